@@ -1,0 +1,3 @@
+from topoclass.cli import main
+
+main()
