@@ -85,7 +85,8 @@ def _human_summary(summary: dict) -> str:
     spacing = f"{summary['spacing_px']:.2f} px"
     if summary.get("spacing_nm") is not None:
         spacing += f" ({summary['spacing_nm']:.1f} nm)"
-    lines.append(f"  sites found      {summary['n_sites']} ({summary.get('n_interior', '?')} interior)")
+    interior = summary.get("n_interior", "?")
+    lines.append(f"  sites found      {summary['n_sites']} ({interior} interior)")
     lines.append(f"  spacing          {spacing}")
     lines.append(f"  polarity         {summary['polarity']}")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}

@@ -12,6 +12,60 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 
+def hexagonal_lattice(
+    shape: tuple[int, int],
+    spacing: float,
+    *,
+    angle: float = 0.0,
+    jitter: float = 0.0,
+    margin: float = 0.0,
+    seed: int | None = 0,
+) -> np.ndarray:
+    """Sites of a triangular (hexagonally packed) lattice covering an image.
+
+    Parameters
+    ----------
+    shape : (rows, cols)
+        Image size in pixels.
+    spacing : float
+        Nearest-neighbour distance in pixels.
+    angle : float
+        Lattice rotation in degrees.
+    jitter : float
+        Standard deviation of a Gaussian displacement of each site, in units of ``spacing``.
+    margin : float
+        Keep sites at least this many pixels inside the frame (negative keeps sites just outside,
+        so that features cut by the border are drawn).
+    seed : int or None
+        Seed of the jitter.
+
+    Returns
+    -------
+    ndarray of shape (n, 2): x (right) and y (down) in pixels.
+    """
+    rng = np.random.default_rng(seed)
+    rows, cols = int(shape[0]), int(shape[1])
+    half = 0.5 * np.hypot(rows, cols) + 2 * spacing
+    n = int(np.ceil(half / spacing)) + 1
+    i, j = np.meshgrid(np.arange(-n, n + 1), np.arange(-2 * n, 2 * n + 1), indexing="ij")
+    # Primitive vectors of the triangular lattice: (a, 0) and (a/2, a*sqrt(3)/2).
+    u = spacing * (i + 0.5 * j)
+    v = spacing * (np.sqrt(3.0) / 2.0) * j
+    theta = np.deg2rad(angle)
+    x = np.cos(theta) * u - np.sin(theta) * v + cols / 2.0
+    y = np.sin(theta) * u + np.cos(theta) * v + rows / 2.0
+    xy = np.column_stack([x.ravel(), y.ravel()])
+    if jitter > 0:
+        xy = xy + rng.normal(scale=jitter * spacing, size=xy.shape)
+    keep = (
+        (xy[:, 0] >= margin)
+        & (xy[:, 0] <= cols - 1 - margin)
+        & (xy[:, 1] >= margin)
+        & (xy[:, 1] <= rows - 1 - margin)
+    )
+    return xy[keep]
+
+
 def render_micrograph(
     xy: np.ndarray,
     shape: tuple[int, int],
