@@ -165,7 +165,7 @@ def collect_image_paths(inputs: Sequence[str | Path]) -> list[Path]:
         inputs = [inputs]
     found: list[Path] = []
     for item in inputs:
-        path = Path(item).expanduser()
+        path = Path(os.path.expanduser(item))
         if path.is_dir():
             found.extend(_images_in_folder(path))
         elif path.is_file() and path.suffix.lower() in LIST_EXTENSIONS:
@@ -569,9 +569,13 @@ def _images_in_list(list_file: Path) -> list[Path]:
         entry = line.strip()
         if not entry or entry.startswith("#"):
             continue
-        path = Path(entry).expanduser()
+        path = Path(os.path.expanduser(entry))
         path = path if path.is_absolute() else base / path
-        if path.is_dir():
+        try:
+            is_dir = path.is_dir()
+        except (OSError, ValueError):  # e.g. a line too long to be a file name
+            is_dir = False
+        if is_dir:
             found.extend(_images_in_folder(path))
         else:
             found.append(path)
