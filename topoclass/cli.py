@@ -14,6 +14,9 @@ import typer
 
 from topoclass.errors import TopoclassError
 
+_FEATURE_HELP = "two-bar, order, topology or all"
+_CLASSIFIER_HELP = "logistic, forest, boosting or svm"
+
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
@@ -80,6 +83,118 @@ def synth(
     typer.echo(f"wrote {labels}")
 
 
+@app.command()
+def train(
+    labels: Path = typer.Argument(..., help="Label sheet (CSV image,label[,group]) or folders."),
+    model: Path | None = typer.Option(None, "--model", help="Model folder to write."),
+    features: str = typer.Option("all", "--features", help="Feature set: " + _FEATURE_HELP),
+    classifier: str = typer.Option("logistic", "--classifier", help="Classifier: "
+                                   + _CLASSIFIER_HELP),
+    cv: int = typer.Option(5, "--cv", min=2, help="Cross-validation folds."),
+    calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid or isotonic."),
+    select: bool = typer.Option(False, "--select", help="Compare feature sets and classifiers "
+                                "by grouped CV and keep the best."),
+    seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same model."),
+    polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Train, cross-validate and calibrate a model from labelled micrographs."""
+    from topoclass.features import FeatureSettings
+    from topoclass.workflow import train_from_labels
+
+    run = train_from_labels(
+        labels, model, feature_set=features, classifier=classifier, cv=cv,
+        calibration=calibration, seed=seed, select=select,
+        settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
+    )
+    _echo_failures(run.failures)
+    if run.comparison:
+        typer.echo(_comparison_table(run.comparison))
+    typer.echo(_cv_summary(run.model))
+    typer.echo(f"model written to {run.directory}")
+
+
+@app.command()
+def validate(
+    model_dir: Path = typer.Argument(..., help="Model folder written by `topoclass train`."),
+    labels: Path = typer.Argument(..., help="Held-out label sheet or class folders."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Measure a trained model on a held-out labelled set."""
+    from topoclass.workflow import validate_from_labels
+
+    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True)
+    _echo_failures(run.failures)
+    m = run.metrics
+    typer.echo(f"held-out images {m['n_samples']}: accuracy {m['accuracy']:.3f}, "
+               f"macro-F1 {m['macro_f1']:.3f}, log-loss {m['log_loss']:.3f}, "
+               f"Brier {m['brier']:.3f}, ECE {m['ece']:.3f}, "
+               f"unfamiliar {m['unfamiliar_fraction']:.1%}")
+    typer.echo(_reliability_text(m))
+    typer.echo(f"report written to {run.report}")
+
+
+@app.command()
+def score(
+    model_dir: Path = typer.Argument(..., help="Model folder written by `topoclass train`."),
+    inputs: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    out: Path = typer.Option(..., "--out", help="Results CSV (one row per image)."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished rows; score the rest."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
+                                          help="Refuse larger images (default 100 megapixels)."),
+) -> None:
+    """Score micrographs in batch with a probability for each class."""
+    import dataclasses
+
+    from topoclass.images import collect_image_paths
+    from topoclass.model import load_model
+    from topoclass.scoring import score_images, summary_text
+    from topoclass.workflow import feature_settings_of
+
+    trained = load_model(model_dir)
+    paths = collect_image_paths(inputs)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, inputs))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    settings = feature_settings_of(trained)
+    if max_pixels is not None:
+        settings = dataclasses.replace(settings, max_pixels=max_pixels)
+    summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
+                           overwrite=overwrite, cache_dir=cache, progress=True)
+    typer.echo(summary_text(summary))
+    if summary.scored == 0 and summary.skipped == 0:
+        raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
+                             "see the message column")
+
+
+@app.command()
+def demo(
+    workdir: Path = typer.Option(Path("topoclass-demo"), "--workdir",
+                                 help="Folder for the demo data, model and results."),
+    jobs: int = typer.Option(2, "--jobs", min=1, help="Parallel workers."),
+) -> None:
+    """Run the whole job on invented anodic-alumina micrographs."""
+    from topoclass.scoring import summary_text
+    from topoclass.workflow import run_demo
+
+    run = run_demo(workdir, jobs=jobs, progress=True, log=typer.echo)
+    typer.echo("")
+    typer.echo(_cv_summary(run.training.model))
+    m = run.validation.metrics
+    typer.echo(f"validation on the production batch: macro-F1 {m['macro_f1']:.3f}, "
+               f"ECE {m['ece']:.3f}")
+    typer.echo(summary_text(run.score_summary))
+    typer.echo(f"model:      {run.training.directory}")
+    typer.echo(f"CV report:  {run.training.directory / 'cv_report.md'}")
+    typer.echo(f"validation: {run.validation.report}")
+    typer.echo(f"scores:     {run.scores}")
+
+
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]
     spacing = f"{summary['spacing_px']:.2f} px"
@@ -102,3 +217,36 @@ def _human_summary(summary: dict) -> str:
 
 def _one_line(exc: BaseException) -> str:
     return " ".join(str(exc).split())
+
+
+def _echo_failures(failures) -> None:
+    for r in failures:
+        typer.echo(f"skipped: {r.error}", err=True)
+
+
+def _cv_summary(model) -> str:
+    r = model.cv_report.summary()
+    return (f"cross-validation ({r['n_splits']}-fold {r['splitter']}): "
+            f"accuracy {r['accuracy']:.3f}, "
+            f"macro-F1 {r['macro_f1']:.3f}, log-loss {r['log_loss']:.3f}, "
+            f"Brier {r['brier']:.3f}, ECE {r['ece']:.3f}; calibration {model.calibration} "
+            f"({model.calibration_reason})")
+
+
+def _comparison_table(rows: list[dict]) -> str:
+    head = f"{'rank':>4}  {'feature set':<10} {'classifier':<10} {'macro-F1':>8} {'log-loss':>8}"
+    lines = [head]
+    for row in sorted(rows, key=lambda r: r["rank"]):
+        mark = "  <- kept" if row["selected"] else ""
+        lines.append(f"{row['rank']:>4}  {row['feature_set']:<10} {row['classifier']:<10} "
+                     f"{row['macro_f1']:>8.3f} {row['log_loss']:>8.3f}{mark}")
+    return "\n".join(lines)
+
+
+def _reliability_text(metrics: dict) -> str:
+    lines = ["reliability (top-label confidence bin: images, mean confidence, accuracy)"]
+    for row in metrics["reliability"]["top_label"]:
+        if row["count"]:
+            lines.append(f"  {row['lower']:.1f}-{row['upper']:.1f}: {row['count']:>4}, "
+                         f"{row['confidence']:.3f}, {row['accuracy']:.3f}")
+    return "\n".join(lines)

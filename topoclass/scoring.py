@@ -1,0 +1,290 @@
+"""Score production micrographs in batch: one CSV row per image, never losing finished work.
+
+Stage 7 of the pipeline. Rows are appended and flushed as images finish, so a crash, ``kill -9``
+or Ctrl-C leaves a valid CSV holding every finished image; ``resume=True`` skips the images
+already in the file (same path, same content hash) and scores the rest. A lock file beside the
+output keeps two runs from writing the same file at once. Rows come in input order whatever the
+number of jobs, so the same inputs and model give a byte-identical file.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from topoclass.errors import TopoclassError
+from topoclass.features import FeatureSettings, TextureResult, file_sha256, iter_textures
+from topoclass.vectorize import barcode_summary
+
+CAUTION = (
+    "Probabilities are estimates learned from the labelled training set. Re-validate the model "
+    "whenever the process, the instrument or the magnification changes. These scores support, "
+    "and do not replace, the lab's own quality procedures."
+)
+
+#: Per-image measures written beside the probabilities (persistence values in spacing units).
+MEASURE_COLUMNS = (
+    "n_sites",
+    "spacing_px",
+    "h0_length_variance",
+    "h1_length_sum",
+    "h1_count",
+    "psi6_global",
+    "psi6_local_mean",
+    "defect_fraction",
+    "clark_evans_r",
+    "nn_cv",
+)
+
+
+@dataclass
+class ScoreSummary:
+    """What a scoring run did."""
+
+    out: Path
+    scored: int = 0
+    failed: int = 0
+    skipped: int = 0
+    unfamiliar: int = 0
+    per_class: Counter = field(default_factory=Counter)
+
+    @property
+    def total(self) -> int:
+        return self.scored + self.failed + self.skipped
+
+
+def score_columns(classes: Sequence[str]) -> list[str]:
+    """The header of ``scores.csv`` for a model with these classes."""
+    return (
+        ["image", "status", "predicted", "confidence"]
+        + [f"p_{c}" for c in classes]
+        + ["unfamiliar", *MEASURE_COLUMNS, "sha256", "message"]
+    )
+
+
+def score_images(
+    model,
+    paths: Sequence[str | Path],
+    out: str | Path,
+    *,
+    settings: FeatureSettings | None = None,
+    jobs: int = 1,
+    resume: bool = False,
+    overwrite: bool = False,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> ScoreSummary:
+    """Score images with a trained model and append one row per image to ``out``.
+
+    Parameters
+    ----------
+    model : topoclass.model.TrainedModel
+        A model from :func:`topoclass.model.load_model` (or freshly trained).
+    paths : sequence of path-like
+        Image files, in the order the rows should appear.
+    out : path-like
+        The CSV to write. An existing file is refused unless ``resume`` or ``overwrite``.
+    settings : FeatureSettings, optional
+        Must match the settings the model was trained with; taken from the model when omitted.
+    jobs : int
+        Worker processes for feature extraction.
+    resume : bool
+        Keep the rows already in ``out`` and score only the images not yet in it.
+    overwrite : bool
+        Replace an existing ``out``.
+    cache_dir, progress
+        As in :func:`topoclass.features.iter_textures`.
+    """
+    out = Path(out)
+    classes = [str(c) for c in model.classes]
+    columns = score_columns(classes)
+    if settings is None:
+        settings = getattr(model, "feature_settings", None) or FeatureSettings()
+    summary = ScoreSummary(out=out)
+    if out.exists() and not (resume or overwrite):
+        raise TopoclassError(
+            f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
+        )
+    out.parent.mkdir(parents=True, exist_ok=True)
+    with _OutputLock(out):
+        done = _prepare_output(out, columns, resume=resume)
+        todo: list[Path] = []
+        for p in paths:
+            p = Path(p)
+            if str(p) in done:
+                try:
+                    unchanged = done[str(p)] == file_sha256(p)
+                except OSError:
+                    unchanged = True  # gone since: keep its finished row
+                if unchanged:
+                    summary.skipped += 1
+                    continue
+                _drop_rows(out, columns, str(p))  # the file changed: its old row is stale
+            todo.append(p)
+        with open(out, "a", newline="", encoding="utf-8") as fh:
+            results = iter_textures(
+                todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
+                description="scoring",
+            )
+            for result in results:
+                row = _score_row(model, classes, result)
+                fh.write(_format_row(row, columns))
+                fh.flush()
+                os.fsync(fh.fileno())
+                if row["status"] == "ok":
+                    summary.scored += 1
+                    summary.per_class[row["predicted"]] += 1
+                    summary.unfamiliar += int(row["unfamiliar"] == "yes")
+                else:
+                    summary.failed += 1
+    return summary
+
+
+def read_scores(path: str | Path) -> list[dict[str, str]]:
+    """Rows of a ``scores.csv`` as dicts (an incomplete last line, from a crash, is ignored)."""
+    text = Path(path).read_text(encoding="utf-8")
+    if text and not text.endswith("\n"):
+        text = text[: text.rfind("\n") + 1]
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+def summary_text(summary: ScoreSummary) -> str:
+    """A short human summary of a run, ending with the caution about probabilities."""
+    lines = [f"scored {summary.scored}, failed {summary.failed}, already done {summary.skipped}"]
+    for cls, n in sorted(summary.per_class.items()):
+        lines.append(f"  predicted {cls:<16} {n}")
+    lines.append(f"  unfamiliar (outside the training set's range): {summary.unfamiliar}")
+    lines.append(f"results: {summary.out}")
+    lines.append("")
+    lines.append("Caution: " + CAUTION)
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------------------------
+# private helpers
+
+
+def _score_row(model, classes: list[str], result: TextureResult) -> dict[str, object]:
+    row: dict[str, object] = {"image": str(result.path), "sha256": result.sha256 or ""}
+    if not result.ok:
+        row.update(status="error", message=result.error or "unknown error")
+        return row
+    texture = result.texture
+    try:
+        proba = np.asarray(model.predict_proba([texture]), dtype=float)[0]
+        unfamiliarity = float(np.asarray(model.unfamiliarity([texture]))[0])
+    except Exception as exc:  # keep the batch going; the row says what happened
+        row.update(status="error", message=f"{result.path}: scoring failed: {exc}")
+        return row
+    best = int(np.argmax(proba))
+    row.update(status="ok", predicted=classes[best], confidence=proba[best])
+    row.update({f"p_{c}": p for c, p in zip(classes, proba, strict=True)})
+    row["unfamiliar"] = "yes" if unfamiliarity > 1.0 else "no"
+    measures = {**barcode_summary(texture.diagrams), **texture.order}
+    measures["spacing_px"] = texture.diagrams.spacing
+    for key in MEASURE_COLUMNS:
+        if key in measures:
+            row[key] = measures[key]
+    row["n_sites"] = measures.get("n_sites", "")
+    row["message"] = (
+        f"unlike the training images (unfamiliarity {unfamiliarity:.2f}); check by eye"
+        if unfamiliarity > 1.0
+        else ""
+    )
+    return row
+
+
+def _format_row(row: dict[str, object], columns: list[str]) -> str:
+    buf = io.StringIO()
+    values = []
+    for c in columns:
+        v = row.get(c, "")
+        if isinstance(v, float | np.floating):
+            v = f"{float(v):.6g}"
+        values.append(v)
+    csv.writer(buf, lineterminator="\n").writerow(values)
+    return buf.getvalue()
+
+
+def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[str, str]:
+    """Start a fresh file, or validate and clean an existing one; return {image: sha256} done."""
+    if not (resume and out.exists()):
+        out.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
+                       encoding="utf-8")
+        return {}
+    text = out.read_text(encoding="utf-8")
+    header = text.split("\n", 1)[0].split(",")
+    if header != columns:
+        raise TopoclassError(
+            f"{out}: its columns do not match this model's classes; resume only with the model "
+            "that wrote it, or write to a new file"
+        )
+    if not text.endswith("\n"):
+        # A crash mid-write left half a row: cut it, that image is scored again.
+        out.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
+    return {r["image"]: r.get("sha256", "") for r in read_scores(out)}
+
+
+def _drop_rows(out: Path, columns: list[str], image: str) -> None:
+    rows = [r for r in read_scores(out) if r["image"] != image]
+    tmp = out.with_name(out.name + ".tmp")
+    with open(tmp, "w", newline="", encoding="utf-8") as fh:
+        fh.write(_format_row(dict(zip(columns, columns, strict=True)), columns))
+        for r in rows:
+            fh.write(_format_row(r, columns))
+    os.replace(tmp, out)
+
+
+class _OutputLock:
+    """An exclusive lock file ``<out>.lock`` holding the writer's PID.
+
+    A lock left by a process that no longer runs (killed) is taken over, so a killed run can be
+    resumed without manual clean-up.
+    """
+
+    def __init__(self, out: Path):
+        self.path = out.with_name(out.name + ".lock")
+
+    def __enter__(self) -> _OutputLock:
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+            except FileExistsError:
+                if _lock_is_stale(self.path):
+                    self.path.unlink(missing_ok=True)
+                    continue
+                raise TopoclassError(
+                    f"{self.path.with_suffix('')}: another topoclass run is writing this file "
+                    f"(lock {self.path}); wait for it to finish or write to another file"
+                ) from None
+            with os.fdopen(fd, "w") as fh:
+                fh.write(str(os.getpid()))
+            return self
+        raise TopoclassError(f"{self.path}: cannot take the output lock; remove it if no run is "
+                             "active")
+
+    def __exit__(self, *exc) -> None:
+        self.path.unlink(missing_ok=True)
+
+
+def _lock_is_stale(path: Path) -> bool:
+    try:
+        pid = int(path.read_text().strip() or "0")
+    except (OSError, ValueError):
+        return False
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    return False

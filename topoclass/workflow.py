@@ -1,0 +1,282 @@
+"""The job end to end: label sheet → textures → trained, validated model → scored batch.
+
+Use-case functions that string the pipeline stages together; the command line is a shell over
+them, and a notebook can call them the same way.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from topoclass.errors import LabelSheetError, TopoclassError
+from topoclass.features import FeatureSettings, TextureResult, compute_textures
+from topoclass.labels import LabelSet, read_labels
+from topoclass.model import (
+    CLASSIFIERS,
+    DEFAULT_CLASSIFIER,
+    TrainedModel,
+    load_model,
+    metrics_markdown,
+    save_model,
+    select_model,
+    train_model,
+    validate_model,
+)
+from topoclass.vectorize import FEATURE_SETS, make_features
+
+#: Feature sets compared by ``select=True``, each with the chosen classifier.
+SELECT_FEATURE_SETS = ("two-bar", "order", "topology", "all")
+
+
+@dataclass
+class TrainingRun:
+    """What :func:`train_from_labels` produced."""
+
+    model: TrainedModel
+    directory: Path
+    failures: list[TextureResult] = field(default_factory=list)
+    comparison: list[dict] | None = None
+
+
+@dataclass
+class ValidationRun:
+    """What :func:`validate_from_labels` produced."""
+
+    metrics: dict
+    report: Path | None
+    failures: list[TextureResult] = field(default_factory=list)
+
+
+def labelled_textures(
+    labels: LabelSet,
+    settings: FeatureSettings,
+    *,
+    jobs: int = 1,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> tuple[list, np.ndarray, np.ndarray | None, list[TextureResult]]:
+    """Textures of a label set's images; failed images are left out and returned apart."""
+    results = compute_textures(
+        labels.images, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
+        description="features",
+    )
+    keep = [i for i, r in enumerate(results) if r.ok]
+    failures = [r for r in results if not r.ok]
+    textures = [results[i].texture for i in keep]
+    y = np.array([labels.labels[i] for i in keep])
+    groups = None if labels.groups is None else np.array([labels.groups[i] for i in keep])
+    return textures, y, groups, failures
+
+
+def train_from_labels(
+    labels_source: str | Path,
+    model_dir: str | Path | None = None,
+    *,
+    feature_set: str = "all",
+    classifier: str = DEFAULT_CLASSIFIER,
+    cv: int = 5,
+    calibration: str = "auto",
+    seed: int = 0,
+    select: bool = False,
+    settings: FeatureSettings | None = None,
+    jobs: int = 1,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> TrainingRun:
+    """Train, cross-validate, calibrate and save a model from a label sheet.
+
+    Parameters
+    ----------
+    labels_source : path
+        CSV ``image,label[,group]`` or a folder with one sub-folder per class.
+    model_dir : path or None
+        Where to write the model; default ``models/<sheet name>-<feature set>-<classifier>``.
+    feature_set : str
+        A key of :data:`topoclass.vectorize.FEATURE_SETS`.
+    classifier : str
+        A key of :data:`topoclass.model.CLASSIFIERS`.
+    cv : int
+        Cross-validation folds (grouped by the sheet's ``group`` column when it has one).
+    calibration : {"auto", "sigmoid", "isotonic"}
+        Probability calibration of the final model.
+    seed : int
+        Seed of every random step.
+    select : bool
+        Compare the feature sets of :data:`SELECT_FEATURE_SETS` (with ``classifier``) and every
+        classifier (with ``feature_set``) by grouped CV, and keep the best.
+    settings : FeatureSettings, optional
+        Site-finding and persistence settings; stored with the model so scoring uses the same.
+    jobs, cache_dir, progress
+        As in :func:`topoclass.features.compute_textures`.
+    """
+    if feature_set not in FEATURE_SETS:
+        make_features(feature_set)  # raises the error that lists the valid names
+    if classifier not in CLASSIFIERS:
+        raise TopoclassError(
+            f"unknown classifier {classifier!r}; choose one of {', '.join(CLASSIFIERS)}"
+        )
+    settings = settings or FeatureSettings()
+    labels = read_labels(labels_source, n_folds=cv)
+    textures, y, groups, failures = labelled_textures(
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+    )
+    if failures:
+        # Re-check the class counts on what is left, so CV fails with a clear message.
+        _check_after_failures(labels, y, groups, cv, failures)
+    comparison = None
+    if select:
+        candidates = [(name, make_features(name), classifier) for name in SELECT_FEATURE_SETS]
+        candidates += [
+            (feature_set, make_features(feature_set), clf)
+            for clf in CLASSIFIERS
+            if clf != classifier
+        ]
+        model, comparison = select_model(
+            textures, y, groups, candidates=candidates, cv=cv, seed=seed,
+            calibration=calibration, progress=progress,
+        )
+    else:
+        model = train_model(
+            textures, y, groups, features=make_features(feature_set),
+            feature_set_name=feature_set, classifier=classifier, cv=cv,
+            calibration=calibration, seed=seed, progress=progress,
+        )
+    model.settings["features"] = dataclasses.asdict(settings)
+    if model_dir is None:
+        sheet = labels.source if labels.source.is_dir() else labels.source.parent
+        model_dir = Path("models") / f"{sheet.name}-{model.feature_set_name}-{model.classifier}"
+    extra = {
+        "label_sheet": str(labels.source),
+        "label_sheet_sha256": labels.sheet_hash,
+        "failed_images": [r.error for r in failures],
+    }
+    directory = save_model(model, model_dir, extra_card=extra)
+    return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
+
+
+def feature_settings_of(model: TrainedModel) -> FeatureSettings:
+    """The site-finding and persistence settings a model was trained with."""
+    stored = dict(model.settings.get("features", {}))
+    known = {f.name for f in dataclasses.fields(FeatureSettings)}
+    return FeatureSettings(**{k: v for k, v in stored.items() if k in known})
+
+
+def validate_from_labels(
+    model_dir: str | Path,
+    labels_source: str | Path,
+    *,
+    out: str | Path | None = None,
+    jobs: int = 1,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> ValidationRun:
+    """Metrics of a saved model on a held-out labelled set, with a reliability table.
+
+    Writes ``validation.md`` into ``out`` (default: the model folder) and returns the metrics.
+    """
+    model = load_model(model_dir)
+    labels = read_labels(labels_source)
+    textures, y, _, failures = labelled_textures(
+        labels, feature_settings_of(model), jobs=jobs, cache_dir=cache_dir, progress=progress
+    )
+    if not textures:
+        raise LabelSheetError(
+            f"{labels.source}: none of its images could be measured; see the messages above"
+        )
+    metrics = validate_model(model, textures, y)
+    metrics["failed_images"] = [r.error for r in failures]
+    out = Path(out) if out is not None else Path(model_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    report = out / "validation.md"
+    report.write_text(
+        metrics_markdown(
+            metrics,
+            title=f"Validation of {Path(model_dir).name}",
+            subtitle=f"Held-out set: {labels.source} ({len(y)} images measured, "
+            f"{len(failures)} failed).",
+        ),
+        encoding="utf-8",
+    )
+    return ValidationRun(metrics=metrics, report=report, failures=failures)
+
+
+def _check_after_failures(labels, y, groups, cv, failures) -> None:
+    problems = [r.error or str(r.path) for r in failures]
+    counts = {c: int(np.sum(y == c)) for c in labels.classes}
+    for c, n in counts.items():
+        n_units = n if groups is None else len(set(groups[y == c].tolist()))
+        if n_units < cv:
+            unit = "images" if groups is None else "groups"
+            problems.append(f"class {c!r} has {n_units} usable {unit}, fewer than the {cv} folds")
+    if len([c for c, n in counts.items() if n > 0]) < 2 or any(
+        "fewer than" in p for p in problems
+    ):
+        raise LabelSheetError(
+            f"{labels.source}: too few usable images after {len(failures)} failed: "
+            + "; ".join(problems)
+        )
+
+
+@dataclass
+class DemoRun:
+    """Where :func:`run_demo` put its results."""
+
+    workdir: Path
+    training: TrainingRun
+    validation: ValidationRun
+    scores: Path
+    score_summary: object
+
+
+def run_demo(
+    workdir: str | Path = "topoclass-demo",
+    *,
+    per_class: int = 16,
+    production_per_class: int = 6,
+    size: int = 320,
+    seed: int = 2026,
+    jobs: int = 2,
+    progress: bool = True,
+    log=print,
+) -> DemoRun:
+    """The whole job on invented anodic-alumina micrographs.
+
+    Makes a labelled training set and a separate "production" batch (other simulated membrane
+    samples, another seed), trains a model with grouped cross-validation, validates it on the
+    production batch's labels, and scores that batch into ``scores.csv``.
+    """
+    from topoclass.images import collect_image_paths
+    from topoclass.scoring import score_images
+    from topoclass.synth import write_dataset
+
+    workdir = Path(workdir)
+    cache = workdir / "cache"
+    log(f"1/4 making invented training micrographs in {workdir / 'training'}")
+    train_sheet = write_dataset(
+        workdir / "training", per_class=per_class, size=size, seed=seed, progress=progress
+    )
+    log(f"    and a production batch in {workdir / 'production'}")
+    prod_sheet = write_dataset(
+        workdir / "production", per_class=production_per_class, size=size, seed=seed + 1,
+        progress=progress,
+    )
+    log("2/4 training (grouped cross-validation, then calibration)")
+    training = train_from_labels(
+        train_sheet, workdir / "model", seed=seed, jobs=jobs, cache_dir=cache, progress=progress
+    )
+    log("3/4 validating on the production batch's labels")
+    validation = validate_from_labels(
+        training.directory, prod_sheet, jobs=jobs, cache_dir=cache, progress=progress
+    )
+    log("4/4 scoring the production batch")
+    scores = workdir / "scores.csv"
+    summary = score_images(
+        training.model, collect_image_paths([prod_sheet.parent / "images"]), scores,
+        settings=feature_settings_of(training.model), jobs=jobs, overwrite=True,
+        cache_dir=cache, progress=progress,
+    )
+    return DemoRun(workdir, training, validation, scores, summary)
