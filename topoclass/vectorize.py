@@ -16,8 +16,9 @@ Conventions shared by every transformer in this module
 * All persistence values are in units of the site spacing.
 * Per-site normalisation: counts, sums, persistence images and Betti curves are divided by the
   number of sites by default (``per_site=True``), so that a larger field of view of the same
-  membrane gives the same features. The number of sites is ``diagrams.n_sites`` when the record
-  carries it, otherwise ``len(diagrams.h0) + 1`` (every finite H0 bar is one site merging into
+  membrane gives the same features. The number of sites is ``diagrams.n_interior`` (the sites
+  the kept bars are charged to), else ``diagrams.n_sites``, when the record carries a positive
+  value, otherwise ``len(diagrams.h0) + 1`` (every finite H0 bar is one site merging into
   another, plus the one component that never dies).
 * Empty diagrams are valid input: their statistics are 0, their images and curves are zero.
 """
@@ -113,7 +114,8 @@ def barcode_summary(
         ``hd_length_sum_per_site``, ``hd_length_mean``, ``hd_length_variance`` (population
         variance), ``hd_length_max``, ``hd_length_q<q>`` and ``hd_entropy`` (persistent entropy
         ``-sum p log p`` with ``p = length / total length``, natural log); then
-        ``h1_truncated_count``, ``h1_truncated_per_site`` and ``n_sites``. H0 covers the finite
+        ``h1_truncated_count``, ``h1_truncated_per_site`` and ``n_sites_counted`` (the number
+        of sites the per-site values divide by; see the module notes). H0 covers the finite
         bars only (the essential class has no length). Statistics of an empty diagram are 0.
     """
     n_sites = _n_sites(diagrams)
@@ -140,7 +142,7 @@ def barcode_summary(
     truncated = int(np.count_nonzero(_truncated(diagrams)))
     out["h1_truncated_count"] = float(truncated)
     out["h1_truncated_per_site"] = truncated / n_sites
-    out["n_sites"] = float(n_sites)
+    out["n_sites_counted"] = float(n_sites)
     return out
 
 
@@ -664,12 +666,14 @@ def _truncated(diagrams: Diagrams) -> np.ndarray:
 
 
 def _n_sites(diagrams: Diagrams) -> int:
-    # Diagrams may carry the number of sites; otherwise each finite H0 bar is one site merging
-    # into another and one component never dies.
-    n = getattr(diagrams, "n_sites", None)
-    if n is None:
-        n = _bars(diagrams, 0).shape[0] + 1
-    return max(int(n), 1)
+    # The sites the bars are charged to (interior sites when border bars were dropped), then all
+    # sites; a record that carries neither (0 or absent) falls back to len(h0) + 1: each finite
+    # H0 bar is one site merging into another, and one component never dies.
+    for attr in ("n_interior", "n_sites"):
+        n = getattr(diagrams, attr, None)
+        if n is not None and int(n) > 0:
+            return int(n)
+    return _bars(diagrams, 0).shape[0] + 1
 
 
 def _persistent_entropy(lengths: np.ndarray) -> float:
