@@ -56,13 +56,17 @@ def inspect(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
     polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
     pixel_size: float | None = typer.Option(
-        None, "--pixel-size", help="Pixel size in nm, when the file does not record it."
+        None, "--pixel-size", min=0.0, help="Pixel size in nm, when the file does not record it."
     ),
+    max_pixels: int = typer.Option(100_000_000, "--max-pixels", min=1,
+                                   help="Refuse larger images (decompression-bomb guard)."),
 ) -> None:
     """Find the lattice sites of one micrograph and report its order measures."""
+    from topoclass.features import FeatureSettings
     from topoclass.inspection import inspect_image
 
-    summary = inspect_image(image, out=out, polarity=polarity, pixel_size_nm=pixel_size)
+    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels)
+    summary = inspect_image(image, out=out, settings=settings)
     if as_json:
         typer.echo(json.dumps(summary, sort_keys=False))
         return

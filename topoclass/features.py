@@ -23,10 +23,10 @@ import numpy as np
 from topoclass import __version__
 from topoclass._progress import progress_bar
 from topoclass.errors import TopoclassError
-from topoclass.images import read_micrograph
+from topoclass.images import Micrograph, read_micrograph
 from topoclass.order import order_measures
 from topoclass.persistence import Diagrams, pattern_persistence
-from topoclass.sites import find_sites
+from topoclass.sites import SitePattern, find_sites
 from topoclass.vectorize import Texture
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
@@ -94,8 +94,17 @@ def file_sha256(path: str | Path) -> str:
     return digest.hexdigest()
 
 
-def extract_texture(path: str | Path, settings: FeatureSettings | None = None) -> Texture:
-    """Read one micrograph and compute its :class:`Texture` (no cache).
+@dataclass(frozen=True)
+class ImageMeasurement:
+    """Every stage's output for one micrograph: the image, its sites and its texture."""
+
+    micrograph: Micrograph
+    pattern: SitePattern
+    texture: Texture
+
+
+def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> ImageMeasurement:
+    """Read one micrograph, find its sites, and compute persistence and order measures.
 
     Raises
     ------
@@ -111,7 +120,13 @@ def extract_texture(path: str | Path, settings: FeatureSettings | None = None) -
         micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=str(path)
     )
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
-    return Texture(diagrams=diagrams, order=order_measures(pattern), source=str(path))
+    texture = Texture(diagrams=diagrams, order=order_measures(pattern), source=str(path))
+    return ImageMeasurement(micrograph, pattern, texture)
+
+
+def extract_texture(path: str | Path, settings: FeatureSettings | None = None) -> Texture:
+    """The :class:`Texture` of one micrograph (no cache); see :func:`measure_image`."""
+    return measure_image(path, settings).texture
 
 
 def compute_textures(

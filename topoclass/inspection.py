@@ -6,12 +6,29 @@ A use-case module: it strings the pipeline stages together for a single image. T
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
 
-from topoclass.images import read_micrograph
-from topoclass.sites import find_sites
+from topoclass.features import FeatureSettings, ImageMeasurement, measure_image
+from topoclass.vectorize import barcode_summary
+
+#: Keys of :func:`summarise` beyond the image and site counts, in print order.
+SUMMARY_MEASURES = (
+    "h0_length_variance",
+    "h1_length_sum",
+    "h1_length_sum_per_site",
+    "h1_count",
+    "h1_truncated_count",
+    "psi6_global",
+    "psi6_local_mean",
+    "defect_fraction",
+    "n5_fraction",
+    "n7_fraction",
+    "clark_evans_r",
+    "nn_cv",
+)
 
 
 def inspect_image(
@@ -20,32 +37,58 @@ def inspect_image(
     out: str | Path | None = None,
     polarity: str = "auto",
     pixel_size_nm: float | None = None,
+    settings: FeatureSettings | None = None,
 ) -> dict:
-    """Find the sites of one micrograph and summarise them.
+    """Find the sites of one micrograph and summarise its texture.
 
-    Returns a JSON-ready dict with at least ``image, n_sites, spacing_px, polarity``; with ``out``
-    it also writes ``sites.csv`` (``x,y,border``) there and lists the files under ``outputs``.
+    Returns a JSON-ready dict (see :func:`summarise`); with ``out`` it also writes
+    ``sites.csv`` (``x,y,border``) there and lists the files written under ``outputs``.
     """
-    path = Path(path)
-    micrograph = read_micrograph(path)
-    pixel_size = pixel_size_nm if pixel_size_nm is not None else micrograph.pixel_size_nm
-    pattern = find_sites(
-        micrograph.image, polarity=polarity, pixel_size_nm=pixel_size, source=str(path)
-    )
+    if settings is None:
+        settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size_nm)
+    measurement = measure_image(path, settings)
+    summary = summarise(measurement)
+    if out is not None:
+        summary["outputs"] = [str(p) for p in write_inspection(measurement, out)]
+    return summary
+
+
+def summarise(measurement: ImageMeasurement) -> dict:
+    """JSON-ready summary: sites, spacing, polarity, persistence (spacing units) and order."""
+    pattern, texture = measurement.pattern, measurement.texture
+    bars = barcode_summary(texture.diagrams)
     summary: dict = {
-        "image": str(path),
+        "image": str(measurement.micrograph.source),
         "n_sites": pattern.n_sites,
         "n_interior": int(np.count_nonzero(~pattern.border)),
         "spacing_px": pattern.spacing,
         "spacing_nm": pattern.spacing_nm,
+        "pixel_size_nm": pattern.pixel_size_nm,
         "polarity": pattern.polarity,
     }
-    if out is not None:
-        out = Path(out)
-        out.mkdir(parents=True, exist_ok=True)
-        sites_csv = out / "sites.csv"
-        rows = np.column_stack([pattern.xy, pattern.border.astype(int)])
-        np.savetxt(sites_csv, rows, delimiter=",", header="x,y,border", comments="",
-                   fmt=["%.3f", "%.3f", "%d"])
-        summary["outputs"] = [str(sites_csv)]
+    merged = {**bars, **texture.order}
+    for key in SUMMARY_MEASURES:
+        if key in merged:
+            summary[key] = _json_number(merged[key])
+    for key, value in texture.order.items():
+        summary.setdefault(key, _json_number(value))
+    summary["h1_count"] = int(bars["h1_count"])
+    summary["h1_truncated_count"] = int(bars["h1_truncated_count"])
     return summary
+
+
+def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Path]:
+    """Write ``sites.csv`` for one measured image into ``out``; return the paths written."""
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    pattern = measurement.pattern
+    sites_csv = out / "sites.csv"
+    rows = np.column_stack([pattern.xy, pattern.border.astype(int)])
+    np.savetxt(sites_csv, rows, delimiter=",", header="x,y,border", comments="",
+               fmt=["%.3f", "%.3f", "%d"])
+    return [sites_csv]
+
+
+def _json_number(value) -> float | None:
+    value = float(value)
+    return value if math.isfinite(value) else None
