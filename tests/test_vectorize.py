@@ -292,7 +292,7 @@ def test_barcode_summary_against_numpy_and_scipy():
         assert s[p + "count_per_site"] == pytest.approx(len(lengths) / n_sites)
         assert s[p + "length_sum_per_site"] == pytest.approx(lengths.sum() / n_sites)
     assert s["h1_truncated_count"] == np.count_nonzero(d.h1[:, 1] >= 2.0) > 0
-    assert s["n_sites_counted"] == len(d.h0) + 1
+    assert s["n_sites_counted"] == s["n_sites"] == len(d.h0) + 1
 
 
 def test_persistent_entropy_of_equal_bars_is_log_n():
@@ -320,6 +320,7 @@ def test_per_site_values_use_the_site_counts_the_record_carries():
         assert row[_column(bs, "h1_length_sum_per_site")] == pytest.approx(0.5 / divisor)
         assert row[_column(bs, "h0_count_per_site")] == pytest.approx(3 / divisor)
         assert barcode_summary(d)["n_sites_counted"] == divisor
+        assert barcode_summary(d)["n_sites"] == (n_sites or 4)
 
 
 def test_barcode_statistics_names_and_raw_option():

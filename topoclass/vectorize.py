@@ -114,8 +114,9 @@ def barcode_summary(
         ``hd_length_sum_per_site``, ``hd_length_mean``, ``hd_length_variance`` (population
         variance), ``hd_length_max``, ``hd_length_q<q>`` and ``hd_entropy`` (persistent entropy
         ``-sum p log p`` with ``p = length / total length``, natural log); then
-        ``h1_truncated_count``, ``h1_truncated_per_site`` and ``n_sites_counted`` (the number
-        of sites the per-site values divide by; see the module notes). H0 covers the finite
+        ``h1_truncated_count``, ``h1_truncated_per_site``, ``n_sites`` (``diagrams.n_sites`` when
+        the record carries it, else ``len(h0) + 1``) and ``n_sites_counted`` (the number of
+        sites the per-site values divide by; see the module notes). H0 covers the finite
         bars only (the essential class has no length). Statistics of an empty diagram are 0.
     """
     n_sites = _n_sites(diagrams)
@@ -142,6 +143,7 @@ def barcode_summary(
     truncated = int(np.count_nonzero(_truncated(diagrams)))
     out["h1_truncated_count"] = float(truncated)
     out["h1_truncated_per_site"] = truncated / n_sites
+    out["n_sites"] = float(_n_sites(diagrams, interior=False))
     out["n_sites_counted"] = float(n_sites)
     return out
 
@@ -665,11 +667,11 @@ def _truncated(diagrams: Diagrams) -> np.ndarray:
     return np.asarray(diagrams.h1_truncated, dtype=bool).reshape(-1)
 
 
-def _n_sites(diagrams: Diagrams) -> int:
+def _n_sites(diagrams: Diagrams, interior: bool = True) -> int:
     # The sites the bars are charged to (interior sites when border bars were dropped), then all
     # sites; a record that carries neither (0 or absent) falls back to len(h0) + 1: each finite
     # H0 bar is one site merging into another, and one component never dies.
-    for attr in ("n_interior", "n_sites"):
+    for attr in ("n_interior", "n_sites") if interior else ("n_sites",):
         n = getattr(diagrams, attr, None)
         if n is not None and int(n) > 0:
             return int(n)
