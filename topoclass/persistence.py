@@ -1,13 +1,42 @@
 """Persistent homology (H0, H1) of the Vietoris–Rips filtration on a site cloud.
 
 Stage 3 of the pipeline: a :class:`~topoclass.sites.SitePattern` becomes :class:`Diagrams`.
+
+Convention: the filtration value of an edge is the distance between its two sites (ripser's
+convention, not half of it), so a bar born at ``r`` appears when sites ``r`` apart are joined.
+
+How it stays linear in the number of sites
+------------------------------------------
+* H0 is the Euclidean minimum spanning tree (EMST): the finite H0 deaths of a Rips filtration are
+  exactly the MST edge lengths (single linkage; common practice). The EMST is a subgraph of the
+  Delaunay triangulation (computational geometry: every MST edge has an empty diametral disk, a
+  Gabriel edge, and Gabriel edges belong to every Delaunay triangulation), so the MST of the
+  ~3n Delaunay edges is the exact EMST, with no radius limit.
+* H1 comes from ripser on the sparse graph of the site pairs closer than ``max_scale``. The Rips
+  complex at scale ``r`` is built from the edges of length ``<= r`` only, so an edge longer than
+  ``max_scale`` never enters the filtration below ``max_scale``: every bar born and dead below the
+  limit is exactly the bar of the full (dense) filtration. Classes still alive at the limit are
+  kept as bars ending at ``max_scale`` and flagged as truncated — this is the diagram of the
+  filtration ``min(f, max_scale)``, so the stability theorem still applies to it.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, fields
 
 import numpy as np
+from ripser import ripser
+from scipy import sparse
+from scipy.sparse.csgraph import minimum_spanning_tree
+from scipy.spatial import Delaunay, QhullError, cKDTree
+
+from topoclass.errors import PatternError
+from topoclass.sites import SitePattern
+
+#: Default radius limit in units of the site spacing; see :func:`pattern_persistence`.
+DEFAULT_MAX_SCALE = 2.5
+#: Default depth (spacings) between border sites and the sites bars are charged to.
+DEFAULT_BORDER_GUARD = 1.0
 
 
 @dataclass(frozen=True)
@@ -18,7 +47,7 @@ class Diagrams:
     ----------
     h0 : ndarray of shape (n0, 2)
         Finite H0 bars ``(birth, death)``; births are 0. The one essential class (the component
-        that never dies) is not stored here.
+        that never dies) is not stored here (see :meth:`essential_count`).
     h1 : ndarray of shape (n1, 2)
         H1 bars ``(birth, death)``. Classes still alive at ``max_scale`` have death ``max_scale``
         and are marked in ``h1_truncated``.
@@ -34,6 +63,13 @@ class Diagrams:
         The radius limit of the filtration, in units of the spacing.
     pixel_size_nm : float or None
         Pixel size, when known, so that ``value * spacing * pixel_size_nm`` is in nanometres.
+    n_sites : int
+        Number of distinct sites in the cloud (coincident sites count once).
+    n_interior : int
+        Number of sites the kept bars are charged to: the interior (non-border) sites when border
+        bars were excluded, otherwise all sites. Per-site statistics divide by this.
+    border_excluded : bool
+        Whether bars charged to border sites were dropped.
     """
 
     h0: np.ndarray
@@ -44,12 +80,369 @@ class Diagrams:
     spacing: float
     max_scale: float
     pixel_size_nm: float | None = None
+    n_sites: int = 0
+    n_interior: int = 0
+    border_excluded: bool = False
 
     def lengths(self, dim: int) -> np.ndarray:
         """Bar lengths ``death - birth`` of dimension ``dim`` (0 or 1), in spacing units."""
-        bars = self.h0 if dim == 0 else self.h1
+        bars = self._bars(dim)
         return bars[:, 1] - bars[:, 0]
 
     def in_pixels(self, dim: int) -> np.ndarray:
         """The bars of dimension ``dim`` in pixels."""
-        return (self.h0 if dim == 0 else self.h1) * self.spacing
+        return self._bars(dim) * self.spacing
+
+    def bars_in_pixels(self, dim: int) -> np.ndarray:
+        """The bars of dimension ``dim`` in pixels (same as :meth:`in_pixels`)."""
+        return self.in_pixels(dim)
+
+    def essential_count(self, dim: int) -> int:
+        """Number of classes that never die: 1 in H0 for a non-empty cloud, 0 in H1.
+
+        A finite planar cloud is connected at a large enough scale and its Rips complex is then a
+        full simplex, so there is exactly one essential class (H0) and H1 has none; H1 classes
+        alive at ``max_scale`` are truncated bars, not essential classes.
+        """
+        self._bars(dim)
+        return int(dim == 0 and self.n_sites > 0)
+
+    @property
+    def n_truncated(self) -> int:
+        """Number of H1 bars cut at ``max_scale``."""
+        return int(np.count_nonzero(self.h1_truncated))
+
+    def summary(self) -> dict[str, float]:
+        """Plain barcode statistics (spacing units); per-site values divide by ``n_interior``.
+
+        Keys: ``h0_count, h0_length_mean, h0_length_variance, h1_count, h1_count_per_site,
+        h1_length_sum, h1_length_sum_per_site, h1_length_max, h1_truncated_count``.
+        """
+        l0, l1 = self.lengths(0), self.lengths(1)
+        per = max(self.n_interior, 1)
+        return {
+            "h0_count": float(l0.size),
+            "h0_length_mean": float(l0.mean()) if l0.size else 0.0,
+            "h0_length_variance": float(l0.var()) if l0.size else 0.0,
+            "h1_count": float(l1.size),
+            "h1_count_per_site": l1.size / per,
+            "h1_length_sum": float(l1.sum()),
+            "h1_length_sum_per_site": float(l1.sum()) / per,
+            "h1_length_max": float(l1.max()) if l1.size else 0.0,
+            "h1_truncated_count": float(self.n_truncated),
+        }
+
+    def to_dict(self) -> dict[str, np.ndarray]:
+        """Plain arrays and scalars, e.g. for ``np.savez``; ``pixel_size_nm=None`` becomes NaN."""
+        out = {}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name == "pixel_size_nm" and value is None:
+                value = np.nan
+            out[f.name] = np.asarray(value)
+        return out
+
+    @classmethod
+    def from_dict(cls, data) -> Diagrams:
+        """Rebuild from :meth:`to_dict` output (or an opened ``.npz`` file)."""
+        pixel = float(data["pixel_size_nm"])
+        return cls(
+            h0=np.asarray(data["h0"], dtype=float).reshape(-1, 2),
+            h1=np.asarray(data["h1"], dtype=float).reshape(-1, 2),
+            h1_truncated=np.asarray(data["h1_truncated"], dtype=bool).reshape(-1),
+            h0_edges=np.asarray(data["h0_edges"], dtype=np.int64).reshape(-1, 2),
+            h1_edges=np.asarray(data["h1_edges"], dtype=np.int64).reshape(-1, 2),
+            spacing=float(data["spacing"]),
+            max_scale=float(data["max_scale"]),
+            pixel_size_nm=None if np.isnan(pixel) else pixel,
+            n_sites=int(data["n_sites"]),
+            n_interior=int(data["n_interior"]),
+            border_excluded=bool(data["border_excluded"]),
+        )
+
+    def _bars(self, dim: int) -> np.ndarray:
+        if dim == 0:
+            return self.h0
+        if dim == 1:
+            return self.h1
+        raise ValueError(f"dim must be 0 or 1, not {dim!r}")
+
+
+def pattern_persistence(
+    pattern: SitePattern,
+    *,
+    max_scale: float = DEFAULT_MAX_SCALE,
+    exclude_border: bool = True,
+    border_guard: float = DEFAULT_BORDER_GUARD,
+) -> Diagrams:
+    """H0 and H1 of the Vietoris–Rips filtration of a site pattern, in spacing units.
+
+    Parameters
+    ----------
+    pattern : SitePattern
+        The sites; coordinates are divided by ``pattern.spacing`` first.
+    max_scale : float
+        Radius limit of the H1 computation in units of the spacing (H0 is exact at all scales).
+        The default 2.5 lets the loops of the common defects die below it (geometry of the
+        triangular lattice with spacing ``a``): a vacancy (a hexagon of side ``a``) dies at
+        ``sqrt(3) a ~ 1.73 a``, a square loop at ``sqrt(2) a ~ 1.41 a``, a 5/7 dislocation pair
+        or a grain-boundary loop (heptagons, octagons of stretched bonds, estimate) at about
+        1.5–1.9 ``a``, two adjacent vacancies or a vacancy merged with a pore at about ``2 a``.
+        2.5 leaves room for jitter above that; larger holes (missing patches) end as truncated
+        bars, which still count. A larger limit costs time: the work grows with the number of
+        site pairs within ``max_scale`` (about ``1.8 max_scale**2`` per site).
+    exclude_border : bool
+        Keep only the bars charged to inner sites. Border sites (``pattern.border``) miss
+        neighbours beyond the frame, and an H1 loop reaches about one spacing past its birth
+        edge, so inner sites are the non-border sites at least ``border_guard`` from every
+        border site. A bar is charged to the site nearest to the midpoint of its edge (the death
+        edge for H0, the birth edge for H1), i.e. to the Voronoi cell holding that midpoint: the
+        cells tile the plane, so bars per inner site is an unbiased density with no perimeter
+        term (keeping only edges with both ends inner would undercount by a few per cent in a
+        30-spacing window; measured in benchmarks/RESULTS_persistence.md).
+    border_guard : float
+        Extra depth, in spacings, between border sites and the sites bars are charged to.
+
+    Returns
+    -------
+    Diagrams
+    """
+    if not isinstance(pattern, SitePattern):
+        raise TypeError(f"pattern_persistence expects a SitePattern, not {type(pattern).__name__}")
+    name = pattern.source or "the site pattern"
+    if not np.isfinite(pattern.spacing) or pattern.spacing <= 0:
+        raise PatternError(f"{name}: site spacing {pattern.spacing!r} is not a positive number; "
+                           "check the site finding of this image")
+    raw = rips_persistence(
+        pattern.xy / pattern.spacing,
+        max_scale=max_scale,
+        border=pattern.border if exclude_border else None,
+        guard=border_guard,
+        source=pattern.source,
+    )
+    return Diagrams(
+        h0=raw["h0"],
+        h1=raw["h1"],
+        h1_truncated=raw["h1_truncated"],
+        h0_edges=raw["h0_edges"],
+        h1_edges=raw["h1_edges"],
+        spacing=pattern.spacing,
+        max_scale=float(max_scale),
+        pixel_size_nm=pattern.pixel_size_nm,
+        n_sites=raw["n_sites"],
+        n_interior=raw["n_interior"],
+        border_excluded=exclude_border,
+    )
+
+
+def rips_persistence(
+    xy: np.ndarray,
+    *,
+    max_scale: float,
+    border: np.ndarray | None = None,
+    guard: float = 0.0,
+    source: str | None = None,
+) -> dict:
+    """Radius-limited Vietoris–Rips persistence (H0, H1) of a planar point cloud.
+
+    Parameters
+    ----------
+    xy : ndarray of shape (n, 2)
+        Points; all values come back in the same units.
+    max_scale : float
+        Radius limit of the H1 computation (same units). H1 classes alive at ``max_scale`` end
+        there and are flagged in ``h1_truncated``; H0 is exact at every scale.
+    border : ndarray of bool, shape (n,), optional
+        Points missing neighbours beyond the frame. When given, only bars charged to inner
+        points are kept: a bar is charged to the point nearest the midpoint of its edge (death
+        edge for H0, birth edge for H1), and inner points are the non-border points at least
+        ``guard`` from every border point (see :func:`pattern_persistence`).
+    guard : float
+        Depth between border points and inner points, same units as ``xy``.
+    source : str, optional
+        File name used in error messages.
+
+    Returns
+    -------
+    dict
+        ``h0`` (n0, 2), ``h0_edges`` (n0, 2), ``h1`` (n1, 2), ``h1_edges`` (n1, 2),
+        ``h1_truncated`` (n1,), ``max_scale``, ``n_sites`` (distinct points) and
+        ``n_interior`` (inner distinct points, or ``n_sites`` without ``border``).
+        H0 bars are sorted by death, H1 bars by birth then death. Edges index into ``xy``.
+    """
+    name = source or "the site cloud"
+    xy = np.asarray(xy, dtype=np.float64)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise PatternError(f"{name}: site coordinates must have shape (n, 2), got {xy.shape}")
+    if not np.all(np.isfinite(xy)):
+        raise PatternError(f"{name}: site coordinates contain NaN or infinity; "
+                           "check the site finding of this image")
+    if not np.isfinite(max_scale) or max_scale <= 0:
+        raise ValueError(f"max_scale must be a positive number, not {max_scale!r}")
+    if not np.isfinite(guard) or guard < 0:
+        raise ValueError(f"guard must be a non-negative number, not {guard!r}")
+    if border is not None:
+        border = np.asarray(border, dtype=bool).reshape(-1)
+        if border.shape[0] != xy.shape[0]:
+            raise ValueError("border mask and xy must have one entry per site")
+
+    # Coincident sites are merged: a sparse matrix cannot hold a zero distance (it is an absent
+    # entry, i.e. "not joined"), so two sites at the same place would look disconnected to
+    # ripser. Merging is exact: a duplicate only adds a zero-length H0 bar, which is no bar.
+    keep, inverse = _unique_points(xy)
+    pts = xy[keep]
+    n = pts.shape[0]
+    border_u = np.zeros(n, dtype=bool)
+    if border is not None:
+        np.logical_or.at(border_u, inverse, border)
+
+    tree = cKDTree(pts) if n else None
+    h0, h0_edges = _h0_from_emst(pts)
+    h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), tree)
+
+    inner = np.ones(n, dtype=bool)
+    if border is not None:
+        inner = _inner_sites(pts, border_u, float(guard))
+        keep0 = inner[_charged_site(pts, h0_edges, tree)]
+        keep1 = inner[_charged_site(pts, h1_edges, tree)]
+        h0, h0_edges = h0[keep0], h0_edges[keep0]
+        h1, h1_edges, h1_truncated = h1[keep1], h1_edges[keep1], h1_truncated[keep1]
+
+    return {
+        "h0": h0,
+        "h0_edges": keep[h0_edges],
+        "h1": h1,
+        "h1_edges": keep[h1_edges],
+        "h1_truncated": h1_truncated,
+        "max_scale": float(max_scale),
+        "n_sites": int(n),
+        "n_interior": int(np.count_nonzero(inner)),
+    }
+
+
+def _unique_points(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Indices of the first copy of each distinct point (input order) and the inverse map."""
+    if xy.shape[0] == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    _, first, inverse = np.unique(xy, axis=0, return_index=True, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    if first.size == xy.shape[0]:
+        return np.arange(xy.shape[0]), np.arange(xy.shape[0])
+    order = np.argsort(first)
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.size)
+    return first[order], rank[inverse]
+
+
+def _h0_from_emst(pts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Finite H0 bars and their death edges from the exact Euclidean MST."""
+    n = pts.shape[0]
+    if n < 2:
+        return np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64)
+    rows, cols = _delaunay_edges(pts)
+    w = np.hypot(*(pts[rows] - pts[cols]).T)
+    graph = sparse.coo_matrix((w, (rows, cols)), shape=(n, n)).tocsr()
+    mst = minimum_spanning_tree(graph).tocoo()
+    if mst.nnz != n - 1:  # cannot happen for a connected Delaunay graph; guard against qhull
+        raise RuntimeError(f"minimum spanning tree has {mst.nnz} edges for {n} sites")
+    order = np.argsort(mst.data, kind="stable")
+    edges = np.column_stack([mst.row[order], mst.col[order]]).astype(np.int64)
+    edges.sort(axis=1)
+    bars = np.column_stack([np.zeros(n - 1), mst.data[order]])
+    return bars, edges
+
+
+def _delaunay_edges(pts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Edges ``i < j`` of the Delaunay graph (or of the chain, for collinear points)."""
+    n = pts.shape[0]
+    try:
+        if n < 3:
+            raise QhullError("fewer than 3 points")
+        tri = Delaunay(pts)
+    except QhullError:
+        # Fewer than three points or all on one line: the EMST is the chain along the line.
+        centred = pts - pts.mean(axis=0)
+        _, sv, vt = np.linalg.svd(centred, full_matrices=False)
+        if n >= 3 and sv[-1] > 1e-9 * max(sv[0], 1e-300):
+            raise
+        order = np.argsort(centred @ vt[0], kind="stable")
+        rows, cols = order[:-1], order[1:]
+    else:
+        indptr, indices = tri.vertex_neighbor_vertices
+        rows = np.repeat(np.arange(n), np.diff(indptr))
+        cols = indices
+        if tri.coplanar.size:
+            # qhull leaves out points it cannot tell from a vertex (closer than its precision);
+            # the nearest vertex is their MST neighbour.
+            rows = np.concatenate([rows, tri.coplanar[:, 0]])
+            cols = np.concatenate([cols, tri.coplanar[:, 2]])
+    lo = np.minimum(rows, cols).astype(np.int64)
+    hi = np.maximum(rows, cols).astype(np.int64)
+    # Each Delaunay edge is listed from both ends; keep one copy (duplicates would be summed).
+    key = np.unique(lo[lo < hi] * n + hi[lo < hi])
+    return key // n, key % n
+
+
+def _inner_sites(pts: np.ndarray, border: np.ndarray, guard: float) -> np.ndarray:
+    """Non-border sites at least ``guard`` from every border site."""
+    inner = ~border
+    if guard > 0 and border.any() and inner.any():
+        dist, _ = cKDTree(pts[border]).query(pts[inner], k=1)
+        inner[inner] = dist >= guard
+    return inner
+
+
+def _charged_site(pts: np.ndarray, edges: np.ndarray, tree: cKDTree | None) -> np.ndarray:
+    """The site whose Voronoi cell holds the midpoint of each edge."""
+    if edges.shape[0] == 0:
+        return np.zeros(0, dtype=np.int64)
+    _, owner = tree.query(0.5 * (pts[edges[:, 0]] + pts[edges[:, 1]]), k=1)
+    return owner
+
+
+def _h1_from_ripser(
+    pts: np.ndarray, max_scale: float, tree: cKDTree | None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """H1 bars, birth edges and truncation flags from ripser on the radius-limited graph."""
+    n = pts.shape[0]
+    empty = (np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64), np.zeros(0, dtype=bool))
+    if n < 3:
+        return empty
+    pairs = tree.query_pairs(max_scale, output_type="ndarray")
+    if pairs.shape[0] == 0:
+        return empty
+    d = np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T)
+    # ripser reads the upper triangle (i < j) of a COO matrix sorted by (row, col).
+    order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+    pairs, d = pairs[order], d[order]
+    dm = sparse.coo_matrix((d, (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    res = ripser(dm, distance_matrix=True, maxdim=1, thresh=max_scale, do_cocycles=True)
+    bars = np.asarray(res["dgms"][1], dtype=np.float64).reshape(-1, 2)
+    cocycles = res["cocycles"][1]
+    if bars.shape[0] == 0:
+        return empty
+    edges = _birth_edges(pts, bars[:, 0], cocycles)
+    truncated = ~np.isfinite(bars[:, 1])
+    bars[truncated, 1] = max_scale
+    order = np.lexsort((bars[:, 1], bars[:, 0]))
+    return bars[order], edges[order], truncated[order]
+
+
+def _birth_edges(pts: np.ndarray, births: np.ndarray, cocycles: list) -> np.ndarray:
+    """For each class, the cocycle edge whose length is the birth value.
+
+    ripser reduces the coboundary matrix in reverse filtration order, so a representative
+    cocycle holds the birth (pivot) edge plus edges that enter at or after it. The birth edge is
+    found as the cocycle edge whose length (rounded to float32, as ripser stores distances) is
+    closest to the birth value; with ties (perfect lattices) any of the equal edges closes the
+    loop at that scale.
+    """
+    sizes = np.fromiter((len(c) for c in cocycles), dtype=np.int64, count=len(cocycles))
+    flat = np.concatenate([np.asarray(c).reshape(-1, 3) for c in cocycles]).astype(np.int64)
+    owner = np.repeat(np.arange(len(cocycles)), sizes)
+    length = np.hypot(*(pts[flat[:, 0]] - pts[flat[:, 1]]).T).astype(np.float32)
+    gap = np.abs(length.astype(np.float64) - births[owner])
+    pick = np.lexsort((gap, owner))
+    first = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    chosen = flat[pick[first], :2]
+    return np.sort(chosen, axis=1)
