@@ -288,6 +288,9 @@ def test_barcode_summary_against_numpy_and_scipy():
         # Persistent entropy (Chintakunta et al. 2015; Rucco et al. 2016): Shannon entropy of
         # p_i = l_i / sum(l), which scipy.stats.entropy computes after normalising.
         assert s[p + "entropy"] == pytest.approx(scipy.stats.entropy(lengths))
+        # Pielou's evenness J = E / log(n) (Pielou, J. Theor. Biol. 13, 1966).
+        assert s[p + "entropy_normalised"] == pytest.approx(
+            scipy.stats.entropy(lengths) / np.log(len(lengths)))
         n_sites = len(d.h0) + 1
         assert s[p + "count_per_site"] == pytest.approx(len(lengths) / n_sites)
         assert s[p + "length_sum_per_site"] == pytest.approx(lengths.sum() / n_sites)
@@ -300,6 +303,7 @@ def test_persistent_entropy_of_equal_bars_is_log_n():
     s = barcode_summary(_diagrams(np.full(8, 1.0), [[1.0, 1.5]] * 5))
     assert s["h0_entropy"] == pytest.approx(np.log(8))
     assert s["h1_entropy"] == pytest.approx(np.log(5))
+    assert s["h0_entropy_normalised"] == pytest.approx(1.0)  # Pielou's J of an even sample
     assert s["h0_length_variance"] == 0.0
 
 
@@ -327,10 +331,11 @@ def test_barcode_statistics_names_and_raw_option():
     records = _textures(3)
     per_site = BarcodeStatistics().fit(records)
     names = list(per_site.get_feature_names_out())
-    assert {"h0_length_variance", "h1_length_sum_per_site", "h1_entropy", "h1_length_q0.9",
-            "h1_truncated_per_site"} <= set(names)
+    assert {"h0_length_variance", "h1_length_sum_per_site", "h1_entropy_normalised",
+            "h1_length_q0.9", "h1_truncated_per_site"} <= set(names)
     raw = BarcodeStatistics(per_site=False).fit(records)
-    assert {"h1_length_sum", "h1_count", "h1_truncated_count"} <= set(raw.get_feature_names_out())
+    assert {"h1_length_sum", "h1_count", "h1_truncated_count", "h1_entropy"} <= set(
+        raw.get_feature_names_out())
     for record, row in zip(records, raw.transform(records), strict=True):
         assert row[_column(raw, "h1_length_sum")] == pytest.approx(record.diagrams.lengths(1).sum())
 

@@ -112,8 +112,10 @@ def barcode_summary(
     dict
         For ``d`` in 0, 1: ``hd_count``, ``hd_count_per_site``, ``hd_length_sum``,
         ``hd_length_sum_per_site``, ``hd_length_mean``, ``hd_length_variance`` (population
-        variance), ``hd_length_max``, ``hd_length_q<q>`` and ``hd_entropy`` (persistent entropy
-        ``-sum p log p`` with ``p = length / total length``, natural log); then
+        variance), ``hd_length_max``, ``hd_length_q<q>``, ``hd_entropy`` (persistent entropy
+        ``E = -sum p log p`` with ``p = length / total length``, natural log) and
+        ``hd_entropy_normalised`` (``E / log n`` for ``n`` bars, Pielou's evenness: 1 for equal
+        bars, and unlike ``E`` it does not grow with the field of view); then
         ``h1_truncated_count``, ``h1_truncated_per_site``, ``n_sites`` (``diagrams.n_sites`` when
         the record carries it, else ``len(h0) + 1``) and ``n_sites_counted`` (the number of
         sites the per-site values divide by; see the module notes). H0 covers the finite
@@ -139,7 +141,8 @@ def barcode_summary(
             qs = np.zeros(len(quantiles))
         for q, value in zip(quantiles, qs, strict=True):
             out[f"{p}length_q{float(q):g}"] = float(value)
-        out[p + "entropy"] = _persistent_entropy(lengths)
+        out[p + "entropy"] = entropy = _persistent_entropy(lengths)
+        out[p + "entropy_normalised"] = entropy / np.log(lengths.size) if lengths.size > 1 else 0.0
     truncated = int(np.count_nonzero(_truncated(diagrams)))
     out["h1_truncated_count"] = float(truncated)
     out["h1_truncated_per_site"] = truncated / n_sites
@@ -409,21 +412,24 @@ class BarcodeStatistics(_RecordTransformer):
 
     Per dimension: count, total length, mean, variance, max, quantiles and persistent entropy of
     the bar lengths (see :func:`barcode_summary`), then the number of H1 bars truncated at
-    ``max_scale``.
+    ``max_scale``. With ``per_site`` (the default) the size-dependent ones are replaced by
+    size-free versions: counts and total lengths per site, and the normalised entropy
+    ``E / log n`` instead of ``E`` (which grows like the log of the number of bars).
 
     Parameters
     ----------
     quantiles : tuple of float
         Quantiles of the bar lengths.
     per_site : bool
-        Report counts and total lengths per site (``h1_length_sum_per_site``, ...) instead of
-        raw (``h1_length_sum``, ...); raw values grow with the field of view.
+        Report counts and total lengths per site (``h1_length_sum_per_site``, ...) and the
+        normalised entropy (``h1_entropy_normalised``) instead of the raw values
+        (``h1_length_sum``, ``h1_entropy``, ...), which grow with the field of view.
 
     Attributes
     ----------
     feature_names_out_ : list of str
         For example ``h0_count_per_site``, ``h0_length_variance``, ``h1_length_q0.9``,
-        ``h1_entropy``, ``h1_truncated_per_site``.
+        ``h1_entropy_normalised``, ``h1_truncated_per_site``.
     """
 
     def __init__(self, quantiles=(0.5, 0.9), per_site=True):
@@ -441,7 +447,7 @@ class BarcodeStatistics(_RecordTransformer):
             names += [p + "count" + extensive, p + "length_sum" + extensive,
                       p + "length_mean", p + "length_variance", p + "length_max"]
             names += [f"{p}length_q{q:g}" for q in quantiles]
-            names.append(p + "entropy")
+            names.append(p + ("entropy_normalised" if self.per_site else "entropy"))
         names.append("h1_truncated" + (extensive or "_count"))
         self.quantiles_ = quantiles
         self.feature_names_out_ = names
