@@ -172,7 +172,8 @@ def _read_csv(source: Path, check_files: bool):
                        "image"])
     if "\x00" in text:
         _fail(source, ["contains NUL bytes, so it is not a text CSV, save it as CSV (UTF-8)"])
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=_delimiter(text))
+    # strict: a quote left open at the end is an error, not a label running to the end
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=_delimiter(text), strict=True)
     problems: list[str] = []
     images: list[Path] = []
     labels: list[str] = []
@@ -195,7 +196,10 @@ def _read_csv(source: Path, check_files: bool):
                        groups, lines, problems)
     except csv.Error as exc:
         problems.append(f"line {reader.line_num}: not valid CSV ({exc}), check the quotes")
-    if header is not None and not problems and not images:
+    if header is None and not problems:
+        problems.append("the sheet is empty, add a header line image,label and one line per "
+                        "image")
+    elif not problems and not images:
         problems.append("no image lines below the header, add one line per image")
     problems += _duplicates(images, labels, groups if "group" in (header or ()) else None, lines)
     if check_files:
@@ -253,6 +257,10 @@ def _parse_row(cells, line, header, columns, base, images, labels, groups, lines
     if group is not None and not group:
         problems.append(f"line {line}: empty group, fill in every group or drop the column")
         ok = False
+    for name, value in (("image path", entry), ("label", label), ("group", group)):
+        if value and ("\n" in value or "\r" in value):
+            problems.append(f"line {line}: {name} contains a line break, check the quotes")
+            ok = False
     if not ok:
         return
     images.append(_resolve_entry(entry, base))
