@@ -7,9 +7,8 @@ demo and for tests of the site finder; they are not measurements.
 
 from __future__ import annotations
 
-import csv
 import json
-from contextlib import contextmanager
+from contextlib import nullcontext
 from dataclasses import dataclass
 from fractions import Fraction
 from pathlib import Path
@@ -19,6 +18,9 @@ import tifffile
 from PIL import Image
 from scipy import ndimage
 from scipy.spatial import Delaunay, cKDTree
+
+from topoclass._progress import progress_bar
+from topoclass.labels import write_labels
 
 KINDS = ("ordered", "vacancies", "grains", "disordered")
 # Pore spacing of oxalic-acid anodised alumina (about 100 nm at 40 V: common practice); it sets
@@ -324,8 +326,9 @@ def draw_sample(kind: str, *, seed: int) -> dict:
         "noise": float(rng.uniform(0.04, 0.2)),
         "contrast": float(rng.uniform(0.45, 0.7)),
         "edge_width_px": float(rng.uniform(0.5, 1.2)),
-        "jitter": float(rng.uniform(0.022, 0.042)),
     }
+    if kind != "disordered":
+        sample["jitter"] = float(rng.uniform(0.022, 0.042))
     if kind == "vacancies":
         sample["vacancy_fraction"] = float(rng.uniform(0.03, 0.09))
         sample["merge_fraction"] = float(rng.uniform(0.005, 0.025))
@@ -406,8 +409,9 @@ def write_dataset(
                 image_seed = int(rng.integers(2**63 - 1))
                 jobs.append((kind, int(i), group, sample, bool(tiff[i]), image_seed))
 
-    rows = []
-    with _progress(progress, len(jobs), "synthetic micrographs") as advance:
+    names, labels, groups = [], [], []
+    bar = progress_bar(len(jobs), "invented micrographs") if progress else nullcontext(_no_op)
+    with bar as advance:
         for kind, i, group, sample, as_tiff, image_seed in jobs:
             image, truth = make_micrograph(kind, size=size, seed=image_seed, sample=sample)
             stem = f"{kind}_{i:03d}"
@@ -422,9 +426,11 @@ def write_dataset(
             with open(out / "truth" / f"{stem}.json", "w", encoding="utf-8") as fh:
                 json.dump(record, fh, separators=(",", ":"))
                 fh.write("\n")
-            rows.append((name, kind, group))
+            names.append(out / name)
+            labels.append(kind)
+            groups.append(group)
             advance()
-    return _write_labels(out / "labels.csv", rows)
+    return write_labels(out / "labels.csv", names, labels, groups)
 
 
 # --------------------------------------------------------------------------------------------
@@ -447,7 +453,9 @@ def _check_kind(kind: str) -> None:
 
 def _image_amounts(kind: str, sample: dict, rng: np.random.Generator) -> dict:
     """Per-image amounts of disorder around the sample's characteristic values."""
-    params = {"jitter": float(np.clip(sample["jitter"] + rng.normal(0, 0.002), 0.02, 0.045))}
+    params = {}
+    if "jitter" in sample:
+        params["jitter"] = float(np.clip(sample["jitter"] + rng.normal(0, 0.002), 0.02, 0.045))
     if kind == "vacancies":
         params["vacancy_fraction"] = float(
             np.clip(sample["vacancy_fraction"] * rng.uniform(0.8, 1.25), 0.02, 0.10)
@@ -815,32 +823,15 @@ def _write_png8(path: Path, image: np.ndarray) -> None:
 
 def _write_tiff16(path: Path, image: np.ndarray, pixel_size_nm: float) -> None:
     # Resolution in pixels per centimetre (TIFF unit 3); no DateTime tag and no software or
-    # shape description, so the bytes depend on the pixels and the pixel size only.
+    # shape description, so the bytes depend on the pixels and the pixel size only. No
+    # compression: noisy 16-bit data does not shrink, and every TIFF reader reads it.
     data = np.round(np.clip(image, 0, 1) * 65535).astype(np.uint16)
     per_cm = Fraction(1e7 / pixel_size_nm).limit_denominator(1000)
     res = (per_cm.numerator, per_cm.denominator)
-    tifffile.imwrite(path, data, photometric="minisblack", compression="zlib", predictor=True,
+    tifffile.imwrite(path, data, photometric="minisblack", compression=None,
                      resolution=(res, res), resolutionunit="CENTIMETER", metadata=None,
                      software=False, datetime=None)
 
 
-def _write_labels(path: Path, rows: list[tuple[str, str, str]]) -> Path:
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["image", "label", "group"])
-        writer.writerows(rows)
-    return path
-
-
-@contextmanager
-def _progress(show: bool, total: int, description: str):
-    if not show:
-        yield lambda: None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
-
-    with Progress("{task.description}", BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
-                  console=Console(stderr=True)) as bar:
-        task = bar.add_task(description, total=total)
-        yield lambda: bar.advance(task)
+def _no_op() -> None:
+    return None
