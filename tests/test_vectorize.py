@@ -172,6 +172,22 @@ def test_pimage_per_site_divides_by_number_of_sites():
     np.testing.assert_allclose(norm, raw / n_sites[:, None])
 
 
+def test_per_site_features_do_not_change_with_the_field_of_view():
+    # Our per-site convention: the same texture seen over twice the area (every H1 bar twice,
+    # twice the sites: two copies of the H0 bars plus the one bar that joins the copies) gives
+    # the same H1 persistence image, H1 Betti curve and H1 barcode statistics.
+    rng = np.random.default_rng(8)
+    one = _random_diagrams(rng, n0=59, n1=30)
+    two = _diagrams(np.r_[one.h0[:, 1], one.h0[:, 1], 1.0], np.vstack([one.h1, one.h1]))
+    records = [Texture(one), Texture(two)]  # n_sites 59 + 1 = 60 and 119 + 1 = 120
+    for est in (PersistenceImageFeatures(), BettiCurveFeatures(), BarcodeStatistics()):
+        out = est.fit(records).transform(records)
+        keep = [i for i, n in enumerate(est.get_feature_names_out())
+                if n.startswith(("h1_", "betti1_")) and "entropy" not in n]
+        assert len(keep) > 5
+        np.testing.assert_allclose(out[0, keep], out[1, keep], rtol=1e-12, atol=1e-15)
+
+
 # --- landscapes -------------------------------------------------------------------------------
 
 
