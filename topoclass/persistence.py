@@ -112,26 +112,6 @@ class Diagrams:
         """Number of H1 bars cut at ``max_scale``."""
         return int(np.count_nonzero(self.h1_truncated))
 
-    def summary(self) -> dict[str, float]:
-        """Plain barcode statistics (spacing units); per-site values divide by ``n_interior``.
-
-        Keys: ``h0_count, h0_length_mean, h0_length_variance, h1_count, h1_count_per_site,
-        h1_length_sum, h1_length_sum_per_site, h1_length_max, h1_truncated_count``.
-        """
-        l0, l1 = self.lengths(0), self.lengths(1)
-        per = max(self.n_interior, 1)
-        return {
-            "h0_count": float(l0.size),
-            "h0_length_mean": float(l0.mean()) if l0.size else 0.0,
-            "h0_length_variance": float(l0.var()) if l0.size else 0.0,
-            "h1_count": float(l1.size),
-            "h1_count_per_site": l1.size / per,
-            "h1_length_sum": float(l1.sum()),
-            "h1_length_sum_per_site": float(l1.sum()) / per,
-            "h1_length_max": float(l1.max()) if l1.size else 0.0,
-            "h1_truncated_count": float(self.n_truncated),
-        }
-
     def to_dict(self) -> dict[str, np.ndarray]:
         """Plain arrays and scalars, e.g. for ``np.savez``; ``pixel_size_nm=None`` becomes NaN."""
         out = {}
