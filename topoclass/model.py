@@ -232,7 +232,7 @@ def reliability_table(y_true, proba, classes, n_bins: int = 10) -> dict:
     dict with
     ``top_label``: one row per bin ``{lower, upper, count, confidence, accuracy}``, where the
         confidence of a sample is its largest probability and accuracy is the fraction of the
-        bin's samples whose top class is right (NaN for empty bins);
+        bin's samples whose top class is right (None for empty bins);
     ``per_class``: for each class, one-vs-rest rows ``{lower, upper, count, mean_predicted,
         observed}`` — the non-empty rows equal ``calibration_curve(y_true == c, proba[:, c])``;
     ``ece``: the top-label expected calibration error
@@ -249,7 +249,7 @@ def reliability_table(y_true, proba, classes, n_bins: int = 10) -> dict:
     ece = float(np.sum(count[filled] / n * np.abs(acc_mean[filled] - conf_mean[filled])))
     top = [
         {"lower": float(edges[b]), "upper": float(edges[b + 1]), "count": int(count[b]),
-         "confidence": float(conf_mean[b]), "accuracy": float(acc_mean[b])}
+         "confidence": _or_none(conf_mean[b]), "accuracy": _or_none(acc_mean[b])}
         for b in range(n_bins)
     ]
     per_class = {}
@@ -257,7 +257,7 @@ def reliability_table(y_true, proba, classes, n_bins: int = 10) -> dict:
         cnt, pred_mean, obs_mean = _bin_means(proba[:, k], (y_true == c).astype(float), edges)
         per_class[str(c)] = [
             {"lower": float(edges[b]), "upper": float(edges[b + 1]), "count": int(cnt[b]),
-             "mean_predicted": float(pred_mean[b]), "observed": float(obs_mean[b])}
+             "mean_predicted": _or_none(pred_mean[b]), "observed": _or_none(obs_mean[b])}
             for b in range(n_bins)
         ]
     return {"n_bins": int(n_bins), "ece": ece, "top_label": top, "per_class": per_class}
@@ -726,7 +726,7 @@ def save_model(model: TrainedModel, directory: str | Path, *,
         if clash:
             raise ValueError(f"extra_card may not replace card entries {clash}")
         card.update(_jsonable(extra_card))
-    (directory / CARD_FILE).write_text(json.dumps(card, indent=2, allow_nan=True) + "\n",
+    (directory / CARD_FILE).write_text(json.dumps(card, indent=2) + "\n",
                                        encoding="utf-8")
     title = f"Cross-validation of {model.feature_set_name} + {model.classifier}"
     (directory / REPORT_FILE).write_text(model.cv_report.to_markdown(title), encoding="utf-8")
@@ -974,6 +974,11 @@ def _bin_means(values, targets, edges):
         mean_value = np.bincount(ids, weights=values, minlength=n_bins) / count
         mean_target = np.bincount(ids, weights=targets, minlength=n_bins) / count
     return count, mean_value, mean_target
+
+
+def _or_none(value) -> float | None:
+    """A bin mean, or None for an empty bin (JSON has no NaN)."""
+    return None if not np.isfinite(value) else float(value)
 
 
 def _check_lengths(X, y, groups) -> None:
