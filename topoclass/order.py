@@ -59,7 +59,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
         * ``density_per_spacing2`` — sites per spacing² over the whole frame
           (``2 / sqrt(3) = 1.1547`` for a triangular lattice whose spacing is the bond length);
         * ``lattice_angle_deg`` — mean lattice orientation ``arg(mean psi6) / 6`` in degrees in
-          [-30, 30), image axes (x right, y down).
+          (-30, 30], image axes (x right, y down).
 
     Raises
     ------
