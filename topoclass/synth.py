@@ -632,8 +632,11 @@ def _disordered(shape, spacing, rng, params) -> _Layout:
     hi = np.array([shape[1] + pad, shape[0] + pad])
     density = 2.0 / (_SQRT3 * spacing**2)  # sites per px^2 of the triangular lattice
     n_target = int(round(density * np.prod(hi - lo)))
-    xy, n_adsorbed = _random_sequential(n_target, lo, hi, min_distance * spacing, rng)
-    xy = _relax(xy, np.ones(len(xy), dtype=bool), spacing, steps=steps)
+    # Made on a torus (periodic box), so that no free edge thins or piles up the sites; the box
+    # is larger than the frame, so the periodicity does not show.
+    period = hi - lo
+    xy, n_adsorbed = _random_sequential(n_target, period, min_distance * spacing, rng)
+    xy = _relax(xy, np.ones(len(xy), dtype=bool), spacing, steps=steps, period=period) + lo
     info = {
         "min_distance": min_distance,
         "relax_steps": steps,
@@ -644,8 +647,9 @@ def _disordered(shape, spacing, rng, params) -> _Layout:
     return _Layout(xy, np.zeros_like(xy), np.ones(len(xy)), info)
 
 
-def _random_sequential(n, lo, hi, d, rng, rounds: int = 8) -> np.ndarray:
-    """Random sequential adsorption of discs of diameter ``d``, topped up to ``n`` sites.
+def _random_sequential(n, period, d, rng, rounds: int = 8) -> tuple[np.ndarray, int]:
+    """Random sequential adsorption of discs of diameter ``d`` in a periodic box, topped up
+    to ``n`` sites; returns the sites and the number adsorbed before the top-up.
 
     Candidates come in batches; a candidate within ``d`` of an accepted site or of an earlier
     candidate of its batch is rejected, which keeps the sequential rule without a Python loop.
@@ -657,22 +661,27 @@ def _random_sequential(n, lo, hi, d, rng, rounds: int = 8) -> np.ndarray:
         need = n - len(acc)
         if need <= 0:
             break
-        cand = rng.uniform(lo, hi, size=(max(3 * need, 256), 2))
+        cand = rng.uniform(0.0, period, size=(max(3 * need, 256), 2))
         if len(acc):
-            dist, _ = cKDTree(acc).query(cand, distance_upper_bound=d)
+            dist, _ = cKDTree(acc, boxsize=period).query(cand, distance_upper_bound=d)
             cand = cand[np.isinf(dist)]
-        pairs = cKDTree(cand).query_pairs(d, output_type="ndarray")
+        pairs = cKDTree(cand, boxsize=period).query_pairs(d, output_type="ndarray")
         bad = np.zeros(len(cand), dtype=bool)
         bad[pairs.max(axis=1)] = True
         acc = np.vstack([acc, cand[~bad][:need]])
     n_adsorbed = len(acc)
     if n_adsorbed < n:
-        acc = np.vstack([acc, rng.uniform(lo, hi, size=(n - n_adsorbed, 2))])
+        acc = np.vstack([acc, rng.uniform(0.0, period, size=(n - n_adsorbed, 2))])
     return acc, n_adsorbed
 
 
-def _relax(xy: np.ndarray, mobile: np.ndarray, spacing: float, *, steps: int) -> np.ndarray:
-    """Short-range repulsion: pairs closer than one spacing push apart (mobile sites only)."""
+def _relax(
+    xy: np.ndarray, mobile: np.ndarray, spacing: float, *, steps: int, period=None
+) -> np.ndarray:
+    """Short-range repulsion: pairs closer than one spacing push apart (mobile sites only).
+
+    With ``period`` (box sides) the sites live in the periodic box ``[0, period)``.
+    """
     xy = xy.copy()
     cutoff = spacing
     pairs = np.empty((0, 2), dtype=int)
@@ -680,11 +689,13 @@ def _relax(xy: np.ndarray, mobile: np.ndarray, spacing: float, *, steps: int) ->
         if step % 4 == 0:
             # A neighbour list with a skin, rebuilt every few steps: a step moves a site by far
             # less than the skin (0.3 spacing), so no pair inside the cutoff is missed.
-            pairs = cKDTree(xy).query_pairs(1.3 * cutoff, output_type="ndarray")
+            pairs = cKDTree(xy, boxsize=period).query_pairs(1.3 * cutoff, output_type="ndarray")
             pairs = pairs[mobile[pairs[:, 0]] | mobile[pairs[:, 1]]]
         if not len(pairs):
             break
         d = xy[pairs[:, 1]] - xy[pairs[:, 0]]
+        if period is not None:
+            d -= period * np.round(d / period)  # minimum image
         dist = np.maximum(np.hypot(d[:, 0], d[:, 1]), 1e-9)
         push = (0.25 * np.maximum(cutoff - dist, 0.0) / dist)[:, None] * d
         n = len(xy)
@@ -693,6 +704,9 @@ def _relax(xy: np.ndarray, mobile: np.ndarray, spacing: float, *, steps: int) ->
             for k in range(2)
         ])
         xy[mobile] += move[mobile]
+        if period is not None:
+            xy %= period
+            xy[xy >= period] = 0.0  # float modulo can round up to the period itself
     return xy
 
 
