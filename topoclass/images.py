@@ -263,7 +263,7 @@ def _read_tiff(path: Path, max_pixels: int, notes: list[str]) -> tuple[np.ndarra
                 info = {
                     "n_pages": n_pages,
                     "dtype": str(page.dtype),
-                    "pixel_size_nm": _tiff_pixel_size(page, tif, notes, path),
+                    "pixel_size_nm": _tiff_pixel_size_or_none(page, tif, notes, path),
                     "bits": int(page.bitspersample),
                 }
                 if photometric not in (0, 1, 2, 3):  # CMYK, YCbCr, CIELab ...: let PIL convert
@@ -320,6 +320,14 @@ def _check_extent(path: Path, page, file_size: int) -> None:
             f"{path}: truncated TIFF (pixel data ends beyond the {file_size:,}-byte file); "
             "copy or export the file again"
         )
+
+
+def _tiff_pixel_size_or_none(page, tif, notes: list[str], path: Path) -> float | None:
+    # A garbled calibration must not cost the user the image: the pixel size is optional.
+    try:
+        return _tiff_pixel_size(page, tif, notes, path)
+    except Exception:  # noqa: BLE001
+        return None
 
 
 def _tiff_pixel_size(page, tif, notes: list[str], path: Path) -> float | None:
