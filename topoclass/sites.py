@@ -1,6 +1,28 @@
 """Find the lattice sites (centres of pores or dots) in a micrograph.
 
 Stage 2 of the pipeline: a 2-D float image in [0, 1] becomes a :class:`SitePattern`.
+
+How the sites are found
+-----------------------
+1. Spacing: the first ring of the radially averaged power spectrum of a Hann-windowed tile;
+   for a triangular lattice of spacing ``a`` it lies at ``k = 2 / (sqrt(3) a)`` cycles/px.
+   Without a clear ring, the first peak of the radially averaged autocorrelation is used.
+2. Band-pass at the scale of the spacing, on a block-averaged copy holding about 6-12 px per
+   spacing (so the cost does not grow with the magnification): a Gaussian of 0.2 spacing for
+   the features minus a Gaussian of 2 spacings for the background (uneven illumination).
+3. Polarity ("auto"): whether the maxima or the minima of the band-passed image rise further
+   from the background. Features covering less than half of the area (the usual case) stand out
+   more than the matrix between them; close-packed features are caught by a later check.
+4. Local maxima at least half a spacing apart whose height above the background passes a
+   threshold set by a robust (MAD) pixel-noise estimate and by the typical feature height.
+5. Sub-pixel centres by a 2-D quadratic fit of the 3x3 neighbourhood; sites within a spacing of
+   the edge, where the smoothing sees past the frame, are re-centred by an intensity-weighted
+   centroid on the unsmoothed image instead.
+6. The spacing is re-measured as the median first-shell bond length of the sites, and the
+   detection repeated once when it moved by more than 3 %.
+
+A pure-noise image (no feature stands clearly above the noise) raises :class:`PatternError`
+rather than returning a pattern: later stages need real sites.
 """
 
 from __future__ import annotations
@@ -8,6 +30,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy import fft as sp_fft
+from scipy import ndimage
+from scipy.spatial import cKDTree
+
+from topoclass.errors import PatternError, TopoclassError
 
 
 @dataclass(frozen=True)
@@ -60,3 +87,559 @@ class SitePattern:
     @property
     def spacing_nm(self) -> float | None:
         return None if self.pixel_size_nm is None else self.spacing * self.pixel_size_nm
+
+
+_MIN_SIDE = 16  # pixels; a smaller image cannot show several periods of any resolvable lattice
+_MIN_SPACING = 3.0  # pixels; finer patterns are not resolved as separate features
+_SPECTRUM_TILE = 1024  # the spacing is measured on a central tile at most this big
+_DETECT_PX_PER_SPACING = 6.0  # block-average so that at least this many pixels span a spacing
+_FEATURE_SIGMA = 0.2  # feature smoothing, spacings (about the radius of a typical pore / sqrt 2)
+_BACKGROUND_SIGMA = 2.0  # illumination background, spacings
+_CANDIDATE_WINDOW = 0.25  # half-width of the local-maximum window, spacings
+_MIN_SEPARATION = 0.5  # spacings; of two maxima closer than this the lower is dropped
+_NOISE_FACTOR = 3.0  # sites stand this many noise sigmas above the background ...
+_RELATIVE_HEIGHT = 0.15  # ... and at least this fraction of the typical site height
+_MIN_SIGNAL = 3.5  # typical site height in noise sigmas below which there is no pattern
+_CENTROID_RADIUS = 0.45  # spacings; window of the centroid used near the edge
+_BOND_CUT = 1.2  # first-shell bonds are shorter than this times the median nearest distance
+_REDO_TOLERANCE = 0.03  # redo the detection when the spacing moved by more than this
+_HONEYCOMB_RATIO = 0.7  # auto polarity: sites this much closer than the spectrum says = wrong
+_RING_CLARITY = 4.0  # a spectral ring stands this many times above the band's median power
+_RING_MAX_WIDTH = 1.0  # full width at half height of a ring, relative to its radius
+
+
+def estimate_spacing(image: np.ndarray, *, source: str | None = None) -> float:
+    """Characteristic nearest-neighbour spacing of a lattice pattern, in pixels.
+
+    The first ring of the radially averaged power spectrum of a Hann-windowed central tile
+    (at most 1024 px square), converted with ``a = 2 / (sqrt(3) k)`` for a triangular lattice;
+    without a clear ring, the first peak of the radially averaged autocorrelation.
+    :func:`find_sites` refines this value with the bond lengths of the sites it finds.
+
+    Parameters
+    ----------
+    image : ndarray of shape (rows, cols)
+        Grey-level micrograph.
+    source : str, optional
+        File name used in error messages.
+
+    Returns
+    -------
+    float
+        Spacing in pixels.
+
+    Raises
+    ------
+    PatternError
+        When the image is too small, flat, or shows no repeating feature spacing at all.
+    """
+    name = source or "image"
+    return _initial_spacing(_as_float_image(image, name), name)
+
+
+def find_sites(
+    image: np.ndarray,
+    *,
+    spacing: float | None = None,
+    polarity: str = "auto",
+    pixel_size_nm: float | None = None,
+    source: str | None = None,
+    border_width: float = 1.0,
+    min_sites: int = 12,
+) -> SitePattern:
+    """Find the lattice sites (pore or dot centres) of a micrograph.
+
+    Parameters
+    ----------
+    image : ndarray of shape (rows, cols)
+        Grey-level micrograph (any real dtype; the scale does not matter).
+    spacing : float, optional
+        Starting value of the spacing in pixels; estimated from the image when omitted. Either
+        way the reported spacing is re-measured from the sites found.
+    polarity : {"auto", "bright", "dark"}
+        Bright dots on a dark matrix, dark pores on a bright one, or decide from the image.
+    pixel_size_nm : float, optional
+        Physical pixel size, stored in the pattern.
+    source : str, optional
+        Path of the image file, for messages and reports.
+    border_width : float
+        Sites closer than this many spacings to the image edge are flagged in ``border``.
+    min_sites : int
+        Fewer sites than this raise :class:`PatternError`.
+
+    Returns
+    -------
+    SitePattern
+
+    Raises
+    ------
+    PatternError
+        When the image holds no usable lattice pattern (too small, flat, pure noise, or fewer
+        than ``min_sites`` sites).
+    TopoclassError
+        When an option has an invalid value.
+    """
+    name = source or "image"
+    if polarity not in ("auto", "bright", "dark"):
+        raise TopoclassError(
+            f"{name}: polarity must be 'auto', 'bright' or 'dark', not {polarity!r}"
+        )
+    if pixel_size_nm is not None and not (np.isfinite(pixel_size_nm) and pixel_size_nm > 0):
+        raise TopoclassError(
+            f"{name}: pixel size must be a positive number of nanometres, not {pixel_size_nm!r}"
+        )
+    if not (np.isfinite(border_width) and border_width >= 0):
+        raise TopoclassError(f"{name}: border_width must be >= 0 spacings, not {border_width!r}")
+    if int(min_sites) != min_sites or min_sites < 1:
+        raise TopoclassError(f"{name}: min_sites must be a positive integer, not {min_sites!r}")
+    img = _as_float_image(image, name)
+    if spacing is None:
+        start = _initial_spacing(img, name)
+    else:
+        start = float(spacing)
+        if not (np.isfinite(start) and _MIN_SPACING <= start <= min(img.shape) / 2):
+            raise TopoclassError(
+                f"{name}: spacing must be between {_MIN_SPACING:g} and {min(img.shape) / 2:g} "
+                f"pixels for this image, not {spacing!r}"
+            )
+    noise = _pixel_noise(img)
+
+    xy, found = _detect(img, start, polarity, noise, name)
+    measured = _bond_spacing(xy)
+    if polarity == "auto" and measured < _HONEYCOMB_RATIO * start:
+        # Features covering more than half of the area (close-packed spheres) skew the other way;
+        # taking the gaps between them gives a honeycomb about 1/sqrt(3) too dense. Try the other.
+        other = "dark" if found == "bright" else "bright"
+        try:
+            xy2, _ = _detect(img, start, other, noise, name)
+        except PatternError:
+            xy2 = None
+        if xy2 is not None:
+            measured2 = _bond_spacing(xy2)
+            if abs(np.log(measured2 / start)) < abs(np.log(measured / start)):
+                xy, found, measured = xy2, other, measured2
+    if np.isfinite(measured) and abs(measured - start) > _REDO_TOLERANCE * start:
+        xy, found = _detect(img, measured, found, noise, name)
+        measured = _bond_spacing(xy)
+        if not np.isfinite(measured):
+            measured = start
+    elif not np.isfinite(measured):
+        measured = start
+
+    if xy.shape[0] < min_sites:
+        raise PatternError(
+            f"{name}: only {xy.shape[0]} sites found (at least {min_sites} needed); check that "
+            "the image shows a lattice pattern and the magnification"
+        )
+    rows, cols = img.shape
+    edge = border_width * measured
+    border = (
+        (xy[:, 0] < edge)
+        | (xy[:, 0] > cols - 1 - edge)
+        | (xy[:, 1] < edge)
+        | (xy[:, 1] > rows - 1 - edge)
+    )
+    return SitePattern(
+        xy=xy,
+        spacing=measured,
+        polarity=found,
+        border=border,
+        shape=img.shape,
+        pixel_size_nm=pixel_size_nm,
+        source=source,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# Input checks
+
+
+def _as_float_image(image, name: str) -> np.ndarray:
+    try:
+        img = np.asarray(image)
+    except Exception as exc:  # e.g. ragged nested lists
+        raise PatternError(f"{name}: cannot be read as an image array ({exc})") from None
+    if img.ndim != 2:
+        raise PatternError(
+            f"{name}: expected a 2-D grey-level image, got an array of shape {img.shape}; "
+            "convert colour images to grey first"
+        )
+    if img.dtype.kind not in "biuf":
+        raise PatternError(f"{name}: image pixels must be numbers, not {img.dtype}")
+    if min(img.shape) < _MIN_SIDE:
+        raise PatternError(
+            f"{name}: image is only {img.shape[0]}x{img.shape[1]} pixels; a lattice needs at "
+            f"least {_MIN_SIDE} pixels per side and several spacings across"
+        )
+    img = img.astype(np.float32, copy=False)
+    if not np.isfinite(img).all():
+        raise PatternError(f"{name}: image contains NaN or infinite pixels; fix or crop the file")
+    lo, hi = float(img.min()), float(img.max())
+    if not hi > lo:
+        raise PatternError(
+            f"{name}: image is flat (every pixel is {lo:g}); check the exposure and the file"
+        )
+    return img
+
+
+# --------------------------------------------------------------------------------------------
+# Spacing from the image
+
+
+def _initial_spacing(img: np.ndarray, name: str) -> float:
+    power, kx, ky = _power_spectrum(_central_tile(img, _SPECTRUM_TILE))
+    spacing = _spacing_from_spectrum(power, kx, ky)
+    if spacing is None:
+        spacing = _spacing_from_autocorrelation(power)
+    if spacing is None:
+        raise PatternError(
+            f"{name}: no repeating feature spacing found (no ring in the power spectrum, no peak "
+            "in the autocorrelation); check that the image shows a lattice pattern"
+        )
+    return spacing
+
+
+def _central_tile(img: np.ndarray, size: int) -> np.ndarray:
+    rows, cols = img.shape
+    r0, c0 = max(0, (rows - size) // 2), max(0, (cols - size) // 2)
+    return img[r0 : r0 + size, c0 : c0 + size]
+
+
+def _power_spectrum(tile: np.ndarray):
+    """Power spectrum of the mean-free, Hann-windowed tile (rfft half plane) and its k grid."""
+    rows, cols = tile.shape
+    window = np.outer(np.hanning(rows), np.hanning(cols)).astype(np.float32)
+    t = (tile - tile.mean()) * window
+    spec = sp_fft.rfft2(t)
+    power = spec.real**2 + spec.imag**2
+    ky = sp_fft.fftfreq(rows).astype(np.float32)[:, None]
+    kx = sp_fft.rfftfreq(cols).astype(np.float32)[None, :]
+    return power, kx, ky
+
+
+def _spacing_from_spectrum(power: np.ndarray, kx: np.ndarray, ky: np.ndarray) -> float | None:
+    rows, cols = power.shape[0], 2 * (power.shape[1] - 1) or 1
+    k = np.sqrt(kx**2 + ky**2)
+    dk = 1.0 / max(rows, cols)
+    bins = np.rint(k / dk).astype(np.int64).ravel()
+    counts = np.bincount(bins)
+    profile = np.bincount(bins, weights=power.ravel()) / np.maximum(counts, 1)
+    radius = np.arange(profile.size) * dk
+    # Admissible band: at least 4 periods across the tile, at least _MIN_SPACING pixels.
+    k_lo = 2.0 / np.sqrt(3.0) / (min(power.shape[0], cols) / 4.0)
+    k_hi = 2.0 / (np.sqrt(3.0) * _MIN_SPACING)
+    band = np.flatnonzero((radius >= k_lo) & (radius <= k_hi) & (counts > 0))
+    if band.size < 5:
+        return None
+    # Ring energy (mean power times circumference) so that the falling background of a blurred
+    # image does not swamp the ring; smoothed over 3 bins against the scatter of single bins.
+    energy = ndimage.uniform_filter1d(profile * radius, 3)[band]
+    base = float(np.median(energy))
+    if not base > 0:
+        return None
+    # The strongest ring: for features covering less than half of the area (pores, dots, the
+    # gaps between close-packed spheres) the form factor makes the first ring the strongest,
+    # and large defects (a blank patch, a crack) put their power below it, not above.
+    # Only a local maximum counts: the tail of low-frequency power at the band's inner end is
+    # shading or a large defect, not a ring.
+    inner = np.flatnonzero((energy[1:-1] >= energy[:-2]) & (energy[1:-1] > energy[2:])) + 1
+    if inner.size == 0:
+        return None
+    first = int(inner[np.argmax(energy[inner])])
+    if not energy[first] >= _RING_CLARITY * base:
+        return None
+    # A lattice ring is narrow; smooth random texture (blurred noise) has one broad hump.
+    half = base + 0.5 * (energy[first] - base)
+    below = np.flatnonzero(energy <= half)
+    lo = below[below < first].max(initial=0)
+    hi = below[below > first].min(initial=energy.size - 1)
+    if (radius[band[hi]] - radius[band[lo]]) > _RING_MAX_WIDTH * radius[band[first]]:
+        return None
+    k_peak = radius[band[first]]
+    # Sub-bin position: power-weighted mean |k| of the ring, above the annulus' median power.
+    ring = (k >= 0.85 * k_peak) & (k <= 1.15 * k_peak)
+    p = power[ring]
+    w = np.maximum(p - np.median(p), 0.0)
+    if not w.sum() > 0:
+        return None
+    k_ring = float(np.sum(w * k[ring]) / w.sum())
+    return 2.0 / (np.sqrt(3.0) * k_ring)
+
+
+def _spacing_from_autocorrelation(power: np.ndarray) -> float | None:
+    rows = power.shape[0]
+    cols = 2 * (power.shape[1] - 1)
+    ac = sp_fft.irfft2(power, s=(rows, cols))
+    if not ac[0, 0] > 0:
+        return None
+    ac = sp_fft.fftshift(ac / ac[0, 0])
+    yy, xx = np.indices(ac.shape)
+    r = np.hypot(yy - rows // 2, xx - cols // 2)
+    bins = np.rint(r).astype(np.int64).ravel()
+    prof = np.bincount(bins, weights=ac.ravel()) / np.maximum(np.bincount(bins), 1)
+    prof = prof[: int(min(rows, cols) / 4) + 1]
+    for i in range(int(_MIN_SPACING), prof.size - 1):
+        # First local maximum that rises clearly above the dip before it.
+        if prof[i] >= prof[i - 1] and prof[i] > prof[i + 1] and prof[i] > 0.05:
+            if prof[i] - prof[:i].min() < 0.05:
+                return None
+            den = prof[i - 1] - 2 * prof[i] + prof[i + 1]
+            shift = 0.5 * (prof[i - 1] - prof[i + 1]) / den if den < 0 else 0.0
+            return float(i + np.clip(shift, -0.5, 0.5))
+    return None
+
+
+def _bond_spacing(xy: np.ndarray) -> float:
+    """Median first-shell bond length of a site cloud (NaN for fewer than 3 sites).
+
+    The median of the *nearest* distance is biased low by positional disorder (a minimum over
+    six neighbours), so the median is taken over all bonds of the first shell: neighbours closer
+    than 1.2 times the median nearest distance (the second shell is at sqrt(3) for a triangular
+    and sqrt(2) for a square lattice).
+    """
+    n = xy.shape[0]
+    if n < 3:
+        return float("nan")
+    dist, _ = cKDTree(xy).query(xy, k=min(7, n))
+    dist = dist[:, 1:]
+    d1 = np.median(dist[:, 0])
+    return float(np.median(dist[dist < _BOND_CUT * d1]))
+
+
+# --------------------------------------------------------------------------------------------
+# Detection
+
+
+def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str):
+    """Sites (x, y) and polarity found with the filters set by ``spacing``."""
+    f = max(1, int(spacing // _DETECT_PX_PER_SPACING))
+    low = _block_mean(img, f)
+    a = spacing / f
+    s_feat = _FEATURE_SIGMA * a
+    smooth = ndimage.gaussian_filter(low, s_feat, mode="reflect")
+    background = _background(low, _BACKGROUND_SIGMA * a)
+    band = smooth - background
+    if polarity == "auto":
+        polarity = _polarity(band, a)
+    sign = 1.0 if polarity == "bright" else -1.0
+    if sign < 0:
+        band = np.negative(band, out=band)
+
+    # Candidates: maxima of a window small enough not to reach the shoulder of a brighter
+    # neighbour (its corner is 0.35 spacing away); then at most one per half spacing.
+    peaks = _local_maxima(band, max(1, int(_CANDIDATE_WINDOW * a)), 0.0)
+    peaks = _separate(peaks, band[peaks[:, 0], peaks[:, 1]], _MIN_SEPARATION * a)
+    height = band[peaks[:, 0], peaks[:, 1]]
+    # Noise of one pixel of ``band``: block averaging divides it by f, the Gaussian by its norm.
+    sigma = noise / f * _gaussian_norm(s_feat)
+    n_expected = max(1, int(low.size / (np.sqrt(3.0) / 2.0 * a * a)))
+    typical = float(np.median(np.sort(height)[::-1][:n_expected])) if height.size else 0.0
+    if not typical > _MIN_SIGNAL * sigma:
+        raise PatternError(
+            f"{name}: no features stand clearly above the noise at a spacing of {spacing:.1f} px; "
+            "check that the image shows a lattice pattern and the magnification"
+        )
+    keep = height > max(_NOISE_FACTOR * sigma, _RELATIVE_HEIGHT * typical)
+    peaks = peaks[keep]
+
+    yx = peaks + _quadratic_offset(band, peaks)
+    yx = (yx + 0.5) * f - 0.5  # block centres back to full-resolution pixel coordinates
+    near = (yx < spacing).any(axis=1) | (yx[:, 0] > img.shape[0] - 1 - spacing) | (
+        yx[:, 1] > img.shape[1] - 1 - spacing
+    )
+    if near.any():
+        level = background[peaks[near, 0], peaks[near, 1]]
+        yx[near] = _centroid(img, yx[near], level, sign, _CENTROID_RADIUS * spacing)
+    return yx[:, ::-1].copy(), polarity
+
+
+def _block_mean(img: np.ndarray, f: int) -> np.ndarray:
+    """Mean over f x f blocks (the last rows/columns that do not fill a block are dropped)."""
+    if f == 1:
+        return img
+    rows, cols = (img.shape[0] // f) * f, (img.shape[1] // f) * f
+    out = np.zeros((rows // f, cols // f), dtype=np.float32)
+    for i in range(f):  # f*f strided adds: much faster than reshape(...).mean()
+        for j in range(f):
+            out += img[i:rows:f, j:cols:f]
+    out *= 1.0 / (f * f)
+    return out
+
+
+def _background(img: np.ndarray, sigma: float) -> np.ndarray:
+    """Gaussian background of scale ``sigma`` px, computed on a coarser grid and interpolated."""
+    g = max(1, int(sigma // 4))
+    small = ndimage.gaussian_filter(_block_mean(img, g), sigma / g, mode="reflect")
+    if g == 1 and small.shape == img.shape:
+        return small
+    # Centre of coarse cell j sits at full-grid position (j + 0.5) g - 0.5.
+    rr = (np.arange(img.shape[0], dtype=np.float32) + 0.5) / g - 0.5
+    cc = (np.arange(img.shape[1], dtype=np.float32) + 0.5) / g - 0.5
+    return _bilinear_grid(small, rr, cc)
+
+
+def _bilinear_grid(small: np.ndarray, rr: np.ndarray, cc: np.ndarray) -> np.ndarray:
+    """Separable linear interpolation of ``small`` at rows ``rr`` x cols ``cc`` (edges held)."""
+
+    def axis_weights(pos, n):
+        pos = np.clip(pos, 0, n - 1)
+        i0 = np.minimum(pos.astype(np.int64), max(n - 2, 0))
+        t = (pos - i0).astype(np.float32)
+        i1 = np.minimum(i0 + 1, n - 1)
+        return i0, i1, t
+
+    r0, r1, tr = axis_weights(rr, small.shape[0])
+    c0, c1, tc = axis_weights(cc, small.shape[1])
+    rows = small[r0] * (1 - tr)[:, None] + small[r1] * tr[:, None]
+    return rows[:, c0] * (1 - tc)[None, :] + rows[:, c1] * tc[None, :]
+
+
+def _polarity(band: np.ndarray, spacing: float) -> str:
+    """"bright" or "dark": which extrema of the band-passed image stand out more.
+
+    Features are the minority phase of the area, so their extrema (one per cell) rise further
+    from the local mean than those of the matrix between them (two per cell, at the centres of
+    the triangles of sites). Medians over the expected number of sites make the decision
+    indifferent to a few vacancies or specks. Measured on a central tile to save time.
+    """
+    tile = _central_tile(band, 512)
+    d = max(1, int(_MIN_SEPARATION * spacing))
+    n = max(1, int(tile.size / (np.sqrt(3.0) / 2.0 * spacing * spacing)))
+    heights = []
+    for sign in (1.0, -1.0):
+        t = tile if sign > 0 else -tile
+        p = _local_maxima(t, d, 0.0)
+        h = np.sort(t[p[:, 0], p[:, 1]])[::-1][:n]
+        heights.append(float(np.median(h)) if h.size else 0.0)
+    return "bright" if heights[0] > heights[1] else "dark"
+
+
+def _pixel_noise(img: np.ndarray) -> float:
+    """Robust standard deviation of the pixel noise (MAD of the finest diagonal Haar detail).
+
+    The diagonal detail of 2x2 blocks cancels smooth shading and straight edges, so what is left
+    is mostly noise; the median absolute deviation ignores the few pixels on curved edges.
+    """
+    t = _central_tile(img, _SPECTRUM_TILE)
+    r, c = (t.shape[0] // 2) * 2, (t.shape[1] // 2) * 2
+    d = 0.5 * (t[0:r:2, 0:c:2] - t[0:r:2, 1:c:2] - t[1:r:2, 0:c:2] + t[1:r:2, 1:c:2])
+    return float(np.median(np.abs(d)) / 0.6745)
+
+
+def _gaussian_norm(sigma: float) -> float:
+    """L2 norm of scipy's 2-D Gaussian kernel: the factor by which it scales white noise."""
+    radius = int(4.0 * sigma + 0.5)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    g = np.exp(-0.5 * (x / sigma) ** 2)
+    g /= g.sum()
+    return float(np.sum(g * g))  # separable: ||g (x) g||_2 = sum(g^2)
+
+
+def _local_maxima(filtered: np.ndarray, min_distance: int, threshold: float) -> np.ndarray:
+    """Integer (row, col) of local maxima above ``threshold``, at least ``min_distance`` apart.
+
+    Same rule as :func:`skimage.feature.peak_local_max` with ``exclude_border=False``: a pixel is
+    a peak when it equals the maximum of the (2 d + 1)-square around it; among equal peaks closer
+    than ``d`` (Chebyshev) the first in raster order is kept. Without that function's general
+    spacing pass, which is slow for tens of thousands of peaks: inside one window only equal
+    values can both be maxima, so only plateau ties need resolving.
+    """
+    d = int(min_distance)
+    size = 2 * d + 1
+    local_max = ndimage.maximum_filter(filtered, size=size, mode="nearest")
+    mask = filtered == local_max
+    if mask.all():  # a flat image has no peaks
+        return np.zeros((0, 2), dtype=np.intp)
+    mask &= filtered > threshold
+    coords = np.argwhere(mask)
+    order = np.argsort(-filtered[mask], kind="stable")
+    coords = coords[order]
+    if d > 1 and coords.shape[0] > 1:
+        pairs = cKDTree(coords).query_pairs(r=d - 1, p=np.inf, output_type="ndarray")
+        if pairs.size:
+            coords = coords[~_rejected(coords.shape[0], pairs)]
+    return coords
+
+
+def _separate(coords: np.ndarray, height: np.ndarray, distance: float) -> np.ndarray:
+    """Drop peaks closer than ``distance`` (Euclidean) to a higher kept one, greedily by height."""
+    if coords.shape[0] < 2:
+        return coords
+    order = np.argsort(-height, kind="stable")
+    coords = coords[order]
+    pairs = cKDTree(coords).query_pairs(r=distance, output_type="ndarray")
+    pairs = pairs[np.hypot(*(coords[pairs[:, 0]] - coords[pairs[:, 1]]).T) < distance]
+    if pairs.size == 0:
+        return coords
+    first, second = pairs.min(axis=1), pairs.max(axis=1)  # first ranks higher
+    keep = np.ones(coords.shape[0], dtype=bool)
+    # Fixed point of "kept unless a kept higher peak is too close": exact after as many rounds
+    # as the longest chain of close peaks, which is a few.
+    for _ in range(coords.shape[0]):
+        rejected = np.zeros_like(keep)
+        rejected[second[keep[first]]] = True
+        new = ~rejected
+        if np.array_equal(new, keep):
+            break
+        keep = new
+    return coords[keep]
+
+
+def _rejected(n: int, pairs: np.ndarray) -> np.ndarray:
+    # Greedy in rank order: a kept peak rejects its later neighbours. Only tied plateau pixels
+    # come here, a handful per image, so a plain loop is fine.
+    pairs = np.sort(pairs, axis=1)
+    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+    rejected = np.zeros(n, dtype=bool)
+    for i, j in pairs:
+        if not rejected[i]:
+            rejected[j] = True
+    return rejected
+
+
+def _quadratic_offset(im: np.ndarray, peaks: np.ndarray) -> np.ndarray:
+    """Sub-pixel (drow, dcol) of each peak: maximum of a quadratic fitted to its 3x3 patch."""
+    if peaks.shape[0] == 0:
+        return np.zeros((0, 2))
+    r = peaks[:, 0][:, None, None] + np.arange(-1, 2)[None, :, None]
+    c = peaks[:, 1][:, None, None] + np.arange(-1, 2)[None, None, :]
+    v = im[np.clip(r, 0, im.shape[0] - 1), np.clip(c, 0, im.shape[1] - 1)].astype(np.float64)
+    # Least-squares quadratic f = c0 + g.x + x.H.x / 2 over the 3x3 grid (closed form).
+    gx = (v[:, :, 2] - v[:, :, 0]).sum(axis=1) / 6.0
+    gy = (v[:, 2, :] - v[:, 0, :]).sum(axis=1) / 6.0
+    hxx = (v[:, :, 2] + v[:, :, 0] - 2.0 * v[:, :, 1]).sum(axis=1) / 3.0
+    hyy = (v[:, 2, :] + v[:, 0, :] - 2.0 * v[:, 1, :]).sum(axis=1) / 3.0
+    hxy = (v[:, 2, 2] - v[:, 2, 0] - v[:, 0, 2] + v[:, 0, 0]) / 4.0
+    det = hxx * hyy - hxy * hxy
+    ok = (det > 0) & (hxx < 0)
+    det = np.where(ok, det, 1.0)
+    dx = np.where(ok, -(hyy * gx - hxy * gy) / det, 0.0)
+    dy = np.where(ok, -(hxx * gy - hxy * gx) / det, 0.0)
+    return np.clip(np.column_stack([dy, dx]), -0.75, 0.75)
+
+
+def _centroid(
+    img: np.ndarray, yx: np.ndarray, level: np.ndarray, sign: float, radius: float, n_iter: int = 3
+) -> np.ndarray:
+    """Iterated intensity-weighted centroid above ``level`` in a disc around each (row, col).
+
+    Used where the smoothing filter sees past the image edge: the window is clipped to the frame
+    instead, so a feature cut by the edge pulls its centre into the frame rather than out.
+    """
+    rad = max(1, int(np.ceil(radius)))
+    dy, dx = np.mgrid[-rad : rad + 1, -rad : rad + 1]
+    disc = dy**2 + dx**2 <= radius**2
+    dy, dx = dy[disc], dx[disc]
+    rows, cols = img.shape
+    yx = yx.copy()
+    for _ in range(n_iter):
+        r = np.rint(yx[:, 0]).astype(np.intp)[:, None] + dy[None, :]
+        c = np.rint(yx[:, 1]).astype(np.intp)[:, None] + dx[None, :]
+        inside = (r >= 0) & (r < rows) & (c >= 0) & (c < cols)
+        v = img[np.clip(r, 0, rows - 1), np.clip(c, 0, cols - 1)]
+        w = np.where(inside, np.maximum(sign * (v - level[:, None]), 0.0), 0.0)
+        total = w.sum(axis=1)
+        ok = total > 0
+        yx[ok, 0] = (w[ok] * r[ok]).sum(axis=1) / total[ok]
+        yx[ok, 1] = (w[ok] * c[ok]).sum(axis=1) / total[ok]
+    return yx
