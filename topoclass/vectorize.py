@@ -266,11 +266,13 @@ class PersistenceImageFeatures(_RecordTransformer):
                 pers = bars[:, 1] - bars[:, 0]
                 weight = scale * pers**self.weight_power
                 p_mass = _pixel_mass(pers, self.persistence_edges_[dim], sigma)
+                # einsum, not BLAS matmul: its sums do not depend on the number of threads, so a
+                # record gets the same bits in a worker process as in the main one.
                 if dim == 0:
-                    parts.append(weight @ p_mass)
+                    parts.append(np.einsum("i,ij->j", weight, p_mass))
                 else:
                     b_mass = _pixel_mass(bars[:, 0], self.birth_edges_, sigma)
-                    parts.append(((b_mass * weight[:, None]).T @ p_mass).ravel())
+                    parts.append(np.einsum("ij,ik->jk", b_mass * weight[:, None], p_mass).ravel())
             rows.append(np.concatenate(parts))
         return self._output(rows)
 
