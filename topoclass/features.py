@@ -14,6 +14,7 @@ import hashlib
 import json
 import os
 import tempfile
+import warnings
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -71,6 +72,7 @@ class TextureResult:
     sha256: str | None
     texture: Texture | None
     error: str | None = None
+    notes: tuple[str, ...] = ()
 
     @property
     def ok(self) -> bool:
@@ -221,16 +223,21 @@ class _Worker:
             hit = self.cache.get(sha, path)
             if hit is not None:
                 return TextureResult(path, sha, hit)
-        try:
-            texture = extract_texture(path, self.settings)
-        except TopoclassError as exc:
-            return TextureResult(path, sha, None, " ".join(str(exc).split()))
-        except Exception as exc:  # a bug or an unforeseen file: report it, keep the batch going
-            message = f"{path}: unexpected {type(exc).__name__}: {exc}"
-            return TextureResult(path, sha, None, " ".join(message.split()))
+        # Reader warnings (multi-page TIFF, non-finite pixels) belong in the image's own row,
+        # not on a terminal shared by a whole batch.
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:
+                texture = extract_texture(path, self.settings)
+            except TopoclassError as exc:
+                return TextureResult(path, sha, None, " ".join(str(exc).split()))
+            except Exception as exc:  # a bug or an unforeseen file: report it, keep going
+                message = f"{path}: unexpected {type(exc).__name__}: {exc}"
+                return TextureResult(path, sha, None, " ".join(message.split()))
+        notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
         if self.cache is not None:
             self.cache.put(sha, texture)
-        return TextureResult(path, sha, texture)
+        return TextureResult(path, sha, texture, notes=notes)
 
 
 def _limited(work: Callable, path: Path) -> TextureResult:

@@ -159,7 +159,8 @@ def collect_image_paths(inputs: Sequence[str | Path]) -> list[Path]:
     Raises
     ------
     ImageReadError
-        When an input itself does not exist, or a list file cannot be read.
+        When a folder or list file given as input does not exist or cannot be read (a missing
+        input with an image extension is returned, like a missing entry of a list file).
     """
     if isinstance(inputs, str | Path):
         inputs = [inputs]
@@ -170,8 +171,10 @@ def collect_image_paths(inputs: Sequence[str | Path]) -> list[Path]:
             found.extend(_images_in_folder(path))
         elif path.is_file() and path.suffix.lower() in LIST_EXTENSIONS:
             found.extend(_images_in_list(path))
-        elif path.exists():
-            found.append(path)  # explicit file: reading it later says what is wrong, if anything
+        elif path.exists() or path.suffix.lower() in IMAGE_EXTENSIONS:
+            # An explicit file, even a missing one: reading it later says what is wrong, as a
+            # row of its own, so one mistyped name does not stop the batch.
+            found.append(path)
         else:
             raise ImageReadError(f"{path}: not found; check the path (a file, folder or list)")
     unique: list[Path] = []

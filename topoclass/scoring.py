@@ -193,11 +193,11 @@ def _score_row(model, classes: list[str], result: TextureResult) -> dict[str, ob
         if key in measures:
             row[key] = measures[key]
     row["n_sites"] = measures.get("n_sites", "")
-    row["message"] = (
-        f"unlike the training images (unfamiliarity {unfamiliarity:.2f}); check by eye"
-        if unfamiliarity > 1.0
-        else ""
-    )
+    messages = list(result.notes)
+    if unfamiliarity > 1.0:
+        messages.insert(0, f"unlike the training images (unfamiliarity {unfamiliarity:.2f}); "
+                           "check by eye")
+    row["message"] = "; ".join(messages)
     return row
 
 
