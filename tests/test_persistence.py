@@ -100,8 +100,13 @@ def test_h0_deaths_equal_mst_of_dense_distance_matrix():
     # (single linkage = Rips H0, common practice).
     rng = np.random.default_rng(7)
     for xy in (rng.uniform(0, 20, (500, 2)), hexagonal_lattice((200, 200), 9.0, jitter=0.1)):
-        raw = rips_persistence(xy, max_scale=1.0)  # H0 does not depend on the radius limit
         reference = np.sort(minimum_spanning_tree(squareform(pdist(xy))).data)
+        # H0 does not depend on the radius limit: a disconnected radius graph (limit 1 px) goes
+        # through the Delaunay graph, a connected one (limit 50 px) through its own MST.
+        np.testing.assert_allclose(
+            rips_persistence(xy, max_scale=50.0)["h0"][:, 1], reference, rtol=1e-12
+        )
+        raw = rips_persistence(xy, max_scale=1.0)
         np.testing.assert_allclose(raw["h0"][:, 1], reference, rtol=1e-12)
         ends = xy[raw["h0_edges"]]
         np.testing.assert_allclose(np.hypot(*(ends[:, 0] - ends[:, 1]).T), reference, rtol=1e-12)

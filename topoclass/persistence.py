@@ -8,10 +8,11 @@ convention, not half of it), so a bar born at ``r`` appears when sites ``r`` apa
 How it stays linear in the number of sites
 ------------------------------------------
 * H0 is the Euclidean minimum spanning tree (EMST): the finite H0 deaths of a Rips filtration are
-  exactly the MST edge lengths (single linkage; common practice). The EMST is a subgraph of the
-  Delaunay triangulation (computational geometry: every MST edge has an empty diametral disk, a
-  Gabriel edge, and Gabriel edges belong to every Delaunay triangulation), so the MST of the
-  ~3n Delaunay edges is the exact EMST, with no radius limit.
+  exactly the MST edge lengths (single linkage; common practice). It is the MST of the radius
+  graph below when that graph is connected; otherwise (components still apart at ``max_scale``)
+  it is the MST of the Delaunay graph, which contains the EMST (computational geometry: every
+  MST edge has an empty diametral disk, a Gabriel edge, and Gabriel edges belong to every
+  Delaunay triangulation). Either way H0 is exact at every scale, with no radius limit.
 * H1 comes from ripser on the sparse graph of the site pairs closer than ``max_scale``. The Rips
   complex at scale ``r`` is built from the edges of length ``<= r`` only, so an edge longer than
   ``max_scale`` never enters the filtration below ``max_scale``: every bar born and dead below the
@@ -277,8 +278,9 @@ def rips_persistence(
         np.logical_or.at(border_u, inverse, border)
 
     tree = cKDTree(pts) if n else None
-    h0, h0_edges = _h0_from_emst(pts)
-    h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), tree)
+    pairs, dist = _radius_graph(pts, float(max_scale), tree)
+    h0, h0_edges = _h0_from_emst(pts, pairs, dist)
+    h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), pairs, dist)
 
     inner = np.ones(n, dtype=bool)
     if border is not None:
@@ -314,15 +316,37 @@ def _unique_points(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return first[order], rank[inverse]
 
 
-def _h0_from_emst(pts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Finite H0 bars and their death edges from the exact Euclidean MST."""
+def _radius_graph(
+    pts: np.ndarray, max_scale: float, tree: cKDTree | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Site pairs ``i < j`` closer than ``max_scale``, sorted by ``(i, j)``, and their lengths."""
+    if pts.shape[0] < 2:
+        return np.zeros((0, 2), dtype=np.int64), np.zeros(0)
+    pairs = tree.query_pairs(max_scale, output_type="ndarray").astype(np.int64)
+    # ripser reads the upper triangle of a COO matrix sorted by (row, col).
+    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+    return pairs, np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T)
+
+
+def _h0_from_emst(
+    pts: np.ndarray, pairs: np.ndarray, dist: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Finite H0 bars and their death edges from the exact Euclidean MST.
+
+    When the radius graph is connected its MST is the EMST (an edge longer than ``max_scale``
+    closes a cycle of shorter edges, so no MST holds it). Otherwise the merges above
+    ``max_scale`` are found on the Delaunay graph, which contains the EMST.
+    """
     n = pts.shape[0]
     if n < 2:
         return np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64)
-    rows, cols = _delaunay_edges(pts)
-    w = np.hypot(*(pts[rows] - pts[cols]).T)
-    graph = sparse.coo_matrix((w, (rows, cols)), shape=(n, n)).tocsr()
+    graph = sparse.coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(n, n)).tocsr()
     mst = minimum_spanning_tree(graph).tocoo()
+    if mst.nnz != n - 1:
+        rows, cols = _delaunay_edges(pts)
+        w = np.hypot(*(pts[rows] - pts[cols]).T)
+        graph = sparse.coo_matrix((w, (rows, cols)), shape=(n, n)).tocsr()
+        mst = minimum_spanning_tree(graph).tocoo()
     if mst.nnz != n - 1:  # cannot happen for a connected Delaunay graph; guard against qhull
         raise RuntimeError(f"minimum spanning tree has {mst.nnz} edges for {n} sites")
     order = np.argsort(mst.data, kind="stable")
@@ -381,21 +405,14 @@ def _charged_site(pts: np.ndarray, edges: np.ndarray, tree: cKDTree | None) -> n
 
 
 def _h1_from_ripser(
-    pts: np.ndarray, max_scale: float, tree: cKDTree | None
+    pts: np.ndarray, max_scale: float, pairs: np.ndarray, dist: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """H1 bars, birth edges and truncation flags from ripser on the radius-limited graph."""
     n = pts.shape[0]
     empty = (np.zeros((0, 2)), np.zeros((0, 2), dtype=np.int64), np.zeros(0, dtype=bool))
-    if n < 3:
+    if n < 3 or pairs.shape[0] < 3:
         return empty
-    pairs = tree.query_pairs(max_scale, output_type="ndarray")
-    if pairs.shape[0] == 0:
-        return empty
-    d = np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T)
-    # ripser reads the upper triangle (i < j) of a COO matrix sorted by (row, col).
-    order = np.lexsort((pairs[:, 1], pairs[:, 0]))
-    pairs, d = pairs[order], d[order]
-    dm = sparse.coo_matrix((d, (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    dm = sparse.coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(n, n))
     res = ripser(dm, distance_matrix=True, maxdim=1, thresh=max_scale, do_cocycles=True)
     bars = np.asarray(res["dgms"][1], dtype=np.float64).reshape(-1, 2)
     cocycles = res["cocycles"][1]
