@@ -222,7 +222,8 @@ class _Worker:
         if self.cache is not None:
             hit = self.cache.get(sha, path)
             if hit is not None:
-                return TextureResult(path, sha, hit)
+                texture, notes = hit
+                return TextureResult(path, sha, texture, notes=notes)
         # Reader warnings (multi-page TIFF, non-finite pixels) belong in the image's own row,
         # not on a terminal shared by a whole batch.
         with warnings.catch_warnings(record=True) as caught:
@@ -236,7 +237,7 @@ class _Worker:
                 return TextureResult(path, sha, None, " ".join(message.split()))
         notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
         if self.cache is not None:
-            self.cache.put(sha, texture)
+            self.cache.put(sha, texture, notes)
         return TextureResult(path, sha, texture, notes=notes)
 
 
@@ -253,23 +254,24 @@ class _TextureCache:
     def __init__(self, root: Path, settings: FeatureSettings):
         self.folder = root / settings.key()
 
-    def get(self, sha: str, path: Path) -> Texture | None:
+    def get(self, sha: str, path: Path) -> tuple[Texture, tuple[str, ...]] | None:
         file = self.folder / f"{sha}.npz"
         if not file.exists():
             return None
         try:
             with np.load(file, allow_pickle=False) as data:
-                return _texture_from_arrays(data, str(path))
+                notes = tuple(str(n) for n in data["notes"])
+                return _texture_from_arrays(data, str(path)), notes
         except Exception:  # a damaged entry is recomputed, never trusted
             return None
 
-    def put(self, sha: str, texture: Texture) -> None:
+    def put(self, sha: str, texture: Texture, notes: tuple[str, ...] = ()) -> None:
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
             # Write to a temporary file and rename, so a concurrent reader never sees half a file.
             fd, tmp = tempfile.mkstemp(dir=self.folder, suffix=".npz.tmp")
             with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, **_texture_to_arrays(texture))
+                np.savez(fh, notes=np.array(notes, dtype=str), **_texture_to_arrays(texture))
             os.replace(tmp, self.folder / f"{sha}.npz")
         except OSError:
             pass  # the cache is an optimisation; a read-only disk must not fail the batch
