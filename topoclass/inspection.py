@@ -6,6 +6,7 @@ A use-case module: it strings the pipeline stages together for a single image. T
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
@@ -78,7 +79,14 @@ def summarise(measurement: ImageMeasurement) -> dict:
 
 
 def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Path]:
-    """Write ``sites.csv`` for one measured image into ``out``; return the paths written."""
+    """Write the files of one measured image into ``out``; return the paths written.
+
+    ``sites.csv`` (``x,y,border``), ``summary.json`` (as ``inspect --json``) and the pictures
+    of :func:`topoclass.report.write_inspection_figures`: ``overlay.png``, ``diagram.png``,
+    ``defects.png`` and ``defects.csv``.
+    """
+    from topoclass.report import write_inspection_figures
+
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     pattern = measurement.pattern
@@ -86,7 +94,12 @@ def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Pat
     rows = np.column_stack([pattern.xy, pattern.border.astype(int)])
     np.savetxt(sites_csv, rows, delimiter=",", header="x,y,border", comments="",
                fmt=["%.3f", "%.3f", "%d"])
-    return [sites_csv]
+    summary_json = out / "summary.json"
+    summary_json.write_text(json.dumps(summarise(measurement), indent=2) + "\n",
+                            encoding="utf-8")
+    pictures = write_inspection_figures(measurement.micrograph.image, pattern,
+                                        measurement.texture.diagrams, out)
+    return [sites_csv, summary_json, *pictures]
 
 
 def _json_number(value) -> float | None:
