@@ -56,10 +56,14 @@ class FeatureSettings:
     max_pixels: int = 100_000_000
 
     def key(self) -> str:
-        """A short stable hash of the settings, the package version and the cache layout."""
+        """A short stable hash of what shapes a texture, the package version and cache layout.
+
+        ``max_pixels`` is left out: it decides whether an image is read, not what comes out.
+        """
+        shaping = dataclasses.asdict(self)
+        shaping.pop("max_pixels")
         payload = json.dumps(
-            {**dataclasses.asdict(self), "version": __version__, "layout": _CACHE_LAYOUT},
-            sort_keys=True,
+            {**shaping, "version": __version__, "layout": _CACHE_LAYOUT}, sort_keys=True
         )
         return hashlib.sha256(payload.encode()).hexdigest()[:16]
 

@@ -1,0 +1,92 @@
+"""Feature cache and parallel extraction."""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+
+import topoclass.features as features
+from topoclass.features import FeatureSettings, compute_textures, extract_texture
+
+
+@pytest.fixture()
+def images(small_dataset):
+    return sorted((small_dataset.parent / "images").iterdir())[:4]
+
+
+def _count_extractions(monkeypatch) -> list:
+    calls = []
+    real = features.extract_texture
+
+    def counting(path, settings=None):
+        calls.append(path)
+        return real(path, settings)
+
+    monkeypatch.setattr(features, "extract_texture", counting)
+    return calls
+
+
+def test_cache_hit_never_recomputes_and_a_changed_setting_does(images, tmp_path, monkeypatch):
+    calls = _count_extractions(monkeypatch)
+    first = compute_textures(images, cache_dir=tmp_path)
+    assert len(calls) == len(images)
+    again = compute_textures(images, cache_dir=tmp_path)
+    assert len(calls) == len(images)  # all from the cache
+    for a, b in zip(first, again, strict=True):
+        assert a.sha256 == b.sha256
+        for f in dataclasses.fields(a.texture.diagrams):
+            np.testing.assert_array_equal(
+                getattr(a.texture.diagrams, f.name), getattr(b.texture.diagrams, f.name)
+            )
+        assert dict(a.texture.order) == dict(b.texture.order)
+    compute_textures(images, FeatureSettings(max_scale=2.0), cache_dir=tmp_path)
+    assert len(calls) == 2 * len(images)  # another setting, another key
+
+
+def test_settings_key_depends_on_every_setting_and_the_version(monkeypatch):
+    base = FeatureSettings()
+    keys = {base.key()}
+    for change in ({"polarity": "dark"}, {"max_scale": 3.0}, {"pixel_size_nm": 5.0}):
+        keys.add(dataclasses.replace(base, **change).key())
+    assert len(keys) == 4
+    # The pixel limit decides whether an image is read, not what comes out of it.
+    assert dataclasses.replace(base, max_pixels=10).key() == base.key()
+    before = base.key()
+    monkeypatch.setattr(features, "__version__", "99.0")
+    assert FeatureSettings().key() != before
+
+
+def test_damaged_cache_entry_is_recomputed(images, tmp_path, monkeypatch):
+    compute_textures(images[:1], cache_dir=tmp_path)
+    (entry,) = list(tmp_path.rglob("*.npz"))
+    entry.write_bytes(b"garbage")
+    calls = _count_extractions(monkeypatch)
+    (result,) = compute_textures(images[:1], cache_dir=tmp_path)
+    assert result.ok and len(calls) == 1
+
+
+def test_parallel_results_equal_serial_and_keep_order(images, tmp_path):
+    serial = compute_textures(images, cache_dir="", jobs=1)
+    parallel = compute_textures(images, cache_dir="", jobs=2)
+    assert [r.path for r in parallel] == [r.path for r in serial]
+    for a, b in zip(serial, parallel, strict=True):
+        np.testing.assert_array_equal(a.texture.diagrams.h1, b.texture.diagrams.h1)
+        assert dict(a.texture.order) == dict(b.texture.order)
+
+
+def test_one_bad_image_is_reported_and_the_rest_go_on(images, tmp_path):
+    bad = tmp_path / "broken.png"
+    bad.write_bytes(b"\x89PNG\r\n\x1a\n" + b"\x00" * 40)
+    missing = tmp_path / "missing.tif"
+    results = compute_textures([images[0], bad, missing, images[1]], cache_dir="", jobs=2)
+    assert [r.ok for r in results] == [True, False, False, True]
+    for r in results[1:3]:
+        assert str(r.path) in r.error and "\n" not in r.error
+
+
+def test_extract_texture_carries_the_source(images):
+    texture = extract_texture(images[0])
+    assert texture.source == str(images[0])
+    assert texture.diagrams.spacing > 0
