@@ -86,6 +86,7 @@ def train_from_labels(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    figures: bool = True,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -112,6 +113,9 @@ def train_from_labels(
         Site-finding and persistence settings; stored with the model so scoring uses the same.
     jobs, cache_dir, progress
         As in :func:`topoclass.features.compute_textures`.
+    figures : bool
+        Also write the cross-validation figures and the permutation importance of the
+        features into the model folder (:func:`topoclass.report.write_training_figures`).
     """
     if feature_set not in FEATURE_SETS:
         make_features(feature_set)  # raises the error that lists the valid names
@@ -155,6 +159,10 @@ def train_from_labels(
         "failed_images": [r.error for r in failures],
     }
     directory = save_model(model, model_dir, extra_card=extra)
+    if figures:
+        from topoclass.report import write_training_figures
+
+        write_training_figures(model, directory, textures, y, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
 
 
@@ -176,7 +184,8 @@ def validate_from_labels(
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
-    Writes ``validation.md`` into ``out`` (default: the model folder) and returns the metrics.
+    Writes ``validation.md`` and the validation figures (confusion matrix, reliability, per
+    class) into ``out`` (default: the model folder) and returns the metrics.
     """
     model = load_model(model_dir)
     labels = read_labels(labels_source)
@@ -201,6 +210,9 @@ def validate_from_labels(
         ),
         encoding="utf-8",
     )
+    from topoclass.report import write_metric_figures
+
+    write_metric_figures(metrics, out, prefix="validation_", title="validation")
     return ValidationRun(metrics=metrics, report=report, failures=failures)
 
 
@@ -247,7 +259,8 @@ def run_demo(
 
     Makes a labelled training set and a separate "production" batch (other simulated membrane
     samples, another seed), trains a model with grouped cross-validation, validates it on the
-    production batch's labels, and scores that batch into ``scores.csv``.
+    production batch's labels, and scores that batch into ``scores.csv`` with ``report.html``
+    beside it.
     """
     from topoclass.images import collect_image_paths
     from topoclass.scoring import score_images
@@ -279,4 +292,7 @@ def run_demo(
         settings=feature_settings_of(training.model), jobs=jobs, overwrite=True,
         cache_dir=cache, progress=progress,
     )
+    from topoclass.report import write_batch_report
+
+    write_batch_report(scores, model=training.model, progress=progress)
     return DemoRun(workdir, training, validation, scores, summary)
