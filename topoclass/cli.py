@@ -171,9 +171,31 @@ def score(
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True)
     typer.echo(summary_text(summary))
+    from topoclass.report import write_batch_report
+
+    typer.echo(f"report: {write_batch_report(out, model=trained, progress=True)}")
     if summary.scored == 0 and summary.skipped == 0:
         raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
                              "see the message column")
+
+
+@app.command()
+def report(
+    scores_csv: Path = typer.Argument(..., help="Results CSV written by `topoclass score`."),
+    out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
+                                    "beside the CSV)."),
+    model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
+                                          "site-finding settings of the detail views."),
+    details: int = typer.Option(200, "--details", min=0,
+                                help="Detail views for at most this many images."),
+) -> None:
+    """Rebuild the HTML report of a scores CSV (for example after a killed run)."""
+    from topoclass.model import load_model
+    from topoclass.report import write_batch_report
+
+    trained = load_model(model_dir) if model_dir is not None else None
+    path = write_batch_report(scores_csv, out, model=trained, details=details, progress=True)
+    typer.echo(f"report: {path}")
 
 
 @app.command()
