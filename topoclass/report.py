@@ -119,8 +119,10 @@ def plot_diagrams(diagrams: Diagrams) -> Figure:
     The diagonal is drawn; H1 bars cut at the radius limit ``max_scale`` are drawn as
     triangles on the dashed line of the limit.
     """
-    fig = Figure(figsize=(10, 4.4), dpi=100, layout="constrained")
-    grid = fig.add_gridspec(2, 2, width_ratios=(1, 1.25))
+    fig = Figure(figsize=(10, 4.4), dpi=100)
+    # Fixed margins: a layout engine would cost more than the drawing itself here.
+    grid = fig.add_gridspec(2, 2, width_ratios=(1, 1.25), left=0.07, right=0.98, bottom=0.11,
+                            top=0.93, wspace=0.18, hspace=0.08)
     ax_d = fig.add_subplot(grid[:, 0])
     ax_h1 = fig.add_subplot(grid[0, 1])
     ax_h0 = fig.add_subplot(grid[1, 1], sharex=ax_h1)
@@ -875,6 +877,17 @@ def _num(value, digits: int = 3) -> str:
     return f"{v:.{digits}f}" if math.isfinite(v) else ""
 
 
+def _short(value) -> str:
+    """Four significant digits, integers without a decimal point."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return ""
+    if not math.isfinite(v):
+        return ""
+    return f"{int(v)}" if v == int(v) and abs(v) < 1e9 else f"{v:.4g}"
+
+
 def _sort_value(value) -> str:
     try:
         v = float(value)
@@ -908,8 +921,10 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
     if failed or unfamiliar:
         items = []
         for r in failed:
-            items.append(f"<li class='failed'><b>failed</b> {esc(r['image'])}: "
-                         f"{esc(r.get('message', ''))}</li>")
+            message = r.get("message", "") or "no message"
+            if not message.startswith(r["image"]):
+                message = f"{r['image']}: {message}"
+            items.append(f"<li class='failed'><b>failed</b> {esc(message)}</li>")
         for r in unfamiliar:
             n = index[id(r)]
             link = (f" — <a href='{esc(links[n])}'>detail</a>" if n in links else "")
@@ -950,8 +965,7 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
                      f"{esc(flag)}</td>")
         for m in measures:
             v = _sort_value(r.get(m))
-            cells.append(f"<td data-value='{v}' class='n'>{_num(v, 4 if m != 'n_sites' else 0)}"
-                         "</td>")
+            cells.append(f"<td data-value='{v}' class='n'>{_short(v)}</td>")
         if ok:
             last = f"<a href='{esc(links[n])}'>detail</a>" if n in links else ""
             if r.get("message"):
