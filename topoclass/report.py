@@ -422,7 +422,10 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0) -> dic
     """
     from sklearn.inspection import permutation_importance
 
-    estimator = getattr(model, "estimator", model)
+    # A TrainedModel wraps the fitted estimator; a CalibratedClassifierCV's own ``estimator``
+    # is its unfitted template, so it is used as it stands.
+    fitted = hasattr(model, "calibrated_classifiers_") or hasattr(model, "steps")
+    estimator = model if fitted else model.estimator
     members = getattr(estimator, "calibrated_classifiers_", None)
     if members is None:
         pipes, rests = [estimator], [estimator[1:]]
