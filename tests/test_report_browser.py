@@ -1,0 +1,102 @@
+"""Open the HTML batch report in a real headless browser (chromium through selenium).
+
+Skipped, with the reason, only when selenium or a chromium/chromedriver binary is missing.
+Install on Debian: ``apt-get install -y chromium chromium-driver`` and ``pip install selenium``.
+"""
+
+from __future__ import annotations
+
+import shutil
+
+import pytest
+from _report_data import CLASSES, scores_fixture
+
+from topoclass.report import write_batch_report
+
+webdriver = pytest.importorskip("selenium.webdriver", reason="selenium is not installed "
+                                "(pip install selenium)")
+
+_BROWSERS = ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable")
+_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+          "--disable-component-update", "--disable-sync", "--no-first-run")
+
+
+@pytest.fixture(scope="module")
+def browser():
+    binary = next((shutil.which(b) for b in _BROWSERS if shutil.which(b)), None)
+    driver_path = shutil.which("chromedriver")
+    if binary is None or driver_path is None:
+        pytest.skip("no chromium/chrome binary or chromedriver on PATH "
+                    "(apt-get install -y chromium chromium-driver)")
+    from selenium.webdriver.chrome.service import Service
+
+    options = webdriver.ChromeOptions()
+    options.binary_location = binary
+    for flag in _FLAGS:
+        options.add_argument(flag)
+    options.add_argument("--window-size=1300,1000")
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    driver = webdriver.Chrome(options=options, service=Service(driver_path))
+    yield driver
+    driver.quit()
+
+
+@pytest.fixture(scope="module")
+def report_page(tmp_path_factory):
+    scores, rows = scores_fixture(tmp_path_factory.mktemp("batch"), n_ok=5)
+    return write_batch_report(scores, details=2), rows
+
+
+def _severe(driver) -> list[dict]:
+    return [e for e in driver.get_log("browser") if e.get("level") == "SEVERE"]
+
+
+def test_report_loads_without_errors_and_every_image_shows(browser, report_page):
+    out, rows = report_page
+    browser.get(out.resolve().as_uri())
+    assert browser.title == "topoclass batch report"
+    assert _severe(browser) == []
+    images = browser.find_elements("css selector", "img")
+    assert len(images) == len(rows) - 1  # every scored image has a thumbnail
+    widths = browser.execute_script(
+        "return Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0);")
+    assert all(w > 0 for w in widths), widths
+
+
+def test_clicking_a_header_sorts_the_rows(browser, report_page):
+    out, rows = report_page
+    browser.get(out.resolve().as_uri())
+    column = f"p {CLASSES[1]}"
+    headers = browser.find_elements("css selector", "#scores thead th")
+    index = [h.text.replace("↕", "").strip() for h in headers].index(column)
+
+    def values():
+        return browser.execute_script(
+            "return Array.from(document.querySelectorAll('#scores tbody tr'))"
+            ".map(r => r.cells[arguments[0]].dataset.value);", index)
+
+    headers[index].click()
+    up = values()
+    numbers = [float(v) for v in up if v != ""]
+    assert numbers == sorted(numbers) and len(numbers) == len(rows) - 1
+    assert up[-1] == ""  # the failed row (no probability) sorts last
+    headers[index].click()
+    down = [float(v) for v in values() if v != ""]
+    assert down == sorted(numbers, reverse=True)
+    # Sorting by the row number restores the file order.
+    headers[0].click()
+    assert [int(v) for v in browser.execute_script(
+        "return Array.from(document.querySelectorAll('#scores tbody tr'))"
+        ".map(r => r.cells[0].dataset.value);")] == list(range(len(rows)))
+    assert _severe(browser) == []
+
+
+def test_detail_view_opens_with_its_pictures(browser, report_page):
+    out, _ = report_page
+    browser.get(out.resolve().as_uri())
+    link = browser.find_elements("css selector", "a[href^='report_files/']")[0]
+    browser.get(link.get_attribute("href"))
+    widths = browser.execute_script(
+        "return Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0);")
+    assert len(widths) == 3 and all(w > 300 for w in widths), widths
+    assert _severe(browser) == []
