@@ -251,3 +251,23 @@ def test_statistics_agree_across_crop_sizes():
         stats[w] = np.array([l0.mean(), l0.var(), count / sites, total / sites])
     for w in (30, 45):
         np.testing.assert_allclose(stats[w], stats[60], rtol=0.05)
+
+
+def test_vacancy_loop_in_a_jittered_lattice_is_kept_and_located_by_its_death_edge():
+    # Elementary geometry: the vacancy's hexagon is filled by its short diagonals (about
+    # sqrt(3) a), so that loop is the longest H1 bar (about sqrt(3) - 1 long) and the triangle
+    # that fills it, with its longest (death) edge, lies inside the hexagon. With jitter the
+    # birth edge of that class can sit many spacings away, near the frame; charging the bar by
+    # its birth edge would drop it as a border bar.
+    a = 10.0
+    shape = (200, 200)
+    xy = hexagonal_lattice(shape, a, jitter=0.02, seed=4)
+    centre = np.argmin(np.hypot(xy[:, 0] - 100, xy[:, 1] - 100))
+    hole = xy[centre]
+    xy = np.delete(xy, centre, axis=0)
+    d = pattern_persistence(_pattern(xy, shape, a))
+    longest = int(np.argmax(d.lengths(1)))
+    assert d.lengths(1)[longest] == pytest.approx(SQRT3 - 1, abs=0.1)
+    i, j = d.h1_death_edges[longest]
+    assert np.hypot(*(0.5 * (xy[i] + xy[j]) - hole)) < a
+    assert np.hypot(*(xy[i] - xy[j])) / a == pytest.approx(d.h1[longest, 1], rel=1e-6)

@@ -57,7 +57,14 @@ class Diagrams:
     h0_edges : ndarray of int, shape (n0, 2)
         Site indices (into the pattern's ``xy``) of the edge at which each H0 bar dies.
     h1_edges : ndarray of int, shape (n1, 2)
-        Site indices of an edge at which each H1 class is born (locates the loop on the image).
+        Site indices of an edge at which each H1 class is born. This edge can lie far from the
+        loop: at the birth scale the region still open around the new loop may stretch across
+        the image, and the edge that closes it can be anywhere along it.
+    h1_death_edges : ndarray of int, shape (n1, 2)
+        Site indices of the edge at which each H1 class dies: the longest edge of the triangle
+        that fills the loop (a Rips triangle enters with its longest edge). That triangle lies
+        inside the hole as it closes, so this edge is what locates the loop on the image.
+        ``(-1, -1)`` for truncated bars, which have no death edge.
     spacing : float
         The spacing (pixels) that all values were divided by; ``value * spacing`` is in pixels.
     max_scale : float
@@ -84,6 +91,13 @@ class Diagrams:
     n_sites: int = 0
     n_interior: int = 0
     border_excluded: bool = False
+    h1_death_edges: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        # Records built by hand (tests, older caches) may lack death edges: mark them unknown.
+        if self.h1_death_edges is None:
+            unknown = np.full((np.asarray(self.h1).reshape(-1, 2).shape[0], 2), -1, np.int64)
+            object.__setattr__(self, "h1_death_edges", unknown)
 
     def lengths(self, dim: int) -> np.ndarray:
         """Bar lengths ``death - birth`` of dimension ``dim`` (0 or 1), in spacing units."""
@@ -139,6 +153,8 @@ class Diagrams:
             n_sites=int(data["n_sites"]),
             n_interior=int(data["n_interior"]),
             border_excluded=bool(data["border_excluded"]),
+            h1_death_edges=(np.asarray(data["h1_death_edges"], dtype=np.int64).reshape(-1, 2)
+                            if "h1_death_edges" in data else None),
         )
 
     def _bars(self, dim: int) -> np.ndarray:
@@ -207,6 +223,7 @@ def pattern_persistence(
         h1_truncated=raw["h1_truncated"],
         h0_edges=raw["h0_edges"],
         h1_edges=raw["h1_edges"],
+        h1_death_edges=raw["h1_death_edges"],
         spacing=pattern.spacing,
         max_scale=float(max_scale),
         pixel_size_nm=pattern.pixel_size_nm,
@@ -235,8 +252,8 @@ def rips_persistence(
         there and are flagged in ``h1_truncated``; H0 is exact at every scale.
     border : ndarray of bool, shape (n,), optional
         Points missing neighbours beyond the frame. When given, only bars charged to inner
-        points are kept: a bar is charged to the point nearest the midpoint of its edge (death
-        edge for H0, birth edge for H1), and inner points are the non-border points at least
+        points are kept: a bar is charged to the point nearest the midpoint of its death edge
+        (its birth edge for truncated H1 bars), and inner points are the non-border points at least
         ``guard`` from every border point (see :func:`pattern_persistence`).
     guard : float
         Depth between border points and inner points, same units as ``xy``.
@@ -247,7 +264,8 @@ def rips_persistence(
     -------
     dict
         ``h0`` (n0, 2), ``h0_edges`` (n0, 2), ``h1`` (n1, 2), ``h1_edges`` (n1, 2),
-        ``h1_truncated`` (n1,), ``max_scale``, ``n_sites`` (distinct points) and
+        ``h1_death_edges`` (n1, 2; -1 for truncated bars), ``h1_truncated`` (n1,),
+        ``max_scale``, ``n_sites`` (distinct points) and
         ``n_interior`` (inner distinct points, or ``n_sites`` without ``border``).
         H0 bars are sorted by death, H1 bars by birth then death. Edges index into ``xy``.
     """
@@ -281,20 +299,26 @@ def rips_persistence(
     pairs, dist = _radius_graph(pts, float(max_scale), tree)
     h0, h0_edges = _h0_from_emst(pts, pairs, dist)
     h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), pairs, dist)
+    h1_death = _death_edges(pts, h1[:, 1], h1_truncated, pairs, dist, tree)
 
     inner = np.ones(n, dtype=bool)
     if border is not None:
         inner = _inner_sites(pts, border_u, float(guard))
         keep0 = inner[_charged_site(pts, h0_edges, tree)]
-        keep1 = inner[_charged_site(pts, h1_edges, tree)]
+        # A loop is charged where it closes (its death edge lies inside the hole); a truncated
+        # loop, which never closes below the limit, where it was born.
+        located = np.where(h1_death[:, :1] >= 0, h1_death, h1_edges)
+        keep1 = inner[_charged_site(pts, located, tree)]
         h0, h0_edges = h0[keep0], h0_edges[keep0]
         h1, h1_edges, h1_truncated = h1[keep1], h1_edges[keep1], h1_truncated[keep1]
+        h1_death = h1_death[keep1]
 
     return {
         "h0": h0,
         "h0_edges": keep[h0_edges],
         "h1": h1,
         "h1_edges": keep[h1_edges],
+        "h1_death_edges": np.where(h1_death >= 0, keep[np.maximum(h1_death, 0)], -1),
         "h1_truncated": h1_truncated,
         "max_scale": float(max_scale),
         "n_sites": int(n),
@@ -443,3 +467,57 @@ def _birth_edges(pts: np.ndarray, births: np.ndarray, cocycles: list) -> np.ndar
     first = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     chosen = flat[pick[first], :2]
     return np.sort(chosen, axis=1)
+
+
+def _death_edges(
+    pts: np.ndarray,
+    deaths: np.ndarray,
+    truncated: np.ndarray,
+    pairs: np.ndarray,
+    dist: np.ndarray,
+    tree: cKDTree | None,
+) -> np.ndarray:
+    """For each finite H1 bar, the edge whose length is its death value.
+
+    In a Rips filtration a triangle enters with its longest edge, so the death value of a class
+    is the length of that edge, exactly as ripser stores it (float32). Measured sites have no
+    two equal distances; equal lengths (perfect lattices) are shared out among the bars of the
+    same death value, Delaunay edges and edges deep inside the cloud first.
+    """
+    out = np.full((deaths.shape[0], 2), -1, dtype=np.int64)
+    finite = np.flatnonzero(~truncated)
+    if finite.size == 0 or pairs.shape[0] == 0:
+        return out
+    length = dist.astype(np.float32)
+    order = np.argsort(length, kind="stable")
+    sorted_len = length[order]
+    values = deaths[finite].astype(np.float32)
+    lo = np.searchsorted(sorted_len, values, side="left")
+    hi = np.searchsorted(sorted_len, values, side="right")
+    uniq, first, counts = np.unique(values, return_index=True, return_counts=True)
+    # The common case, vectorised: one bar of that death value and one edge of that length.
+    single = first[(counts == 1) & ((hi - lo)[first] == 1)]
+    out[finite[single]] = pairs[order[lo[single]]]
+    delaunay_keys = None
+    lo_corner, hi_corner = pts.min(axis=0), pts.max(axis=0)
+    n = pts.shape[0]
+    for value in uniq[(counts > 1) | ((hi - lo)[first] > 1)]:
+        bars = finite[values == value]
+        candidates = order[lo[values == value][0] : hi[values == value][0]]
+        if candidates.size > 1:
+            # Ties (perfect lattices only): a loop closes across a Delaunay edge (the hexagon
+            # around a vacancy is triangulated by its diagonals, while an ordinary
+            # second-neighbour pair is not a Delaunay edge), and deep inside the cloud rather
+            # than in the notches of its outline.
+            if delaunay_keys is None:
+                rows, cols = _delaunay_edges(pts)
+                delaunay_keys = np.sort(rows * n + cols)
+            key = pairs[candidates, 0] * n + pairs[candidates, 1]
+            pos = np.minimum(np.searchsorted(delaunay_keys, key), delaunay_keys.size - 1)
+            is_delaunay = delaunay_keys[pos] == key
+            mids = 0.5 * (pts[pairs[candidates, 0]] + pts[pairs[candidates, 1]])
+            depth = np.minimum(mids - lo_corner, hi_corner - mids).min(axis=1)
+            candidates = candidates[np.lexsort((-depth, ~is_delaunay))]
+        take = min(bars.size, candidates.size)
+        out[bars[:take]] = pairs[candidates[:take]]
+    return out
