@@ -247,7 +247,7 @@ class DemoRun:
 def run_demo(
     workdir: str | Path = "topoclass-demo",
     *,
-    per_class: int = 16,
+    per_class: int = 24,
     production_per_class: int = 6,
     size: int = 320,
     seed: int = 2026,
