@@ -38,7 +38,7 @@ import numpy as np
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
-from scipy.spatial import Delaunay, QhullError, cKDTree
+from scipy.spatial import Delaunay, QhullError
 
 from topoclass._progress import progress_bar
 from topoclass.errors import TopoclassError
@@ -184,9 +184,7 @@ def locate_defects(pattern: SitePattern, diagrams: Diagrams, *, top: int = 10) -
       longest edge, so that edge's length is the death value). That triangle lies inside the
       hole when the hole closes, so the place is local — unlike the birth edge, which can sit
       far away when, at the birth scale, the still-open region stretches across the image.
-      The edge is the site pair whose length (rounded to float32, as ripser stores distances)
-      equals the death value; among equal lengths, the pair whose midpoint is farthest from
-      any site (a hole is where the sites are not), each edge used once.
+      The persistence stage finds that edge (``diagrams.h1_death_edges``).
     * H1 bar cut at the radius limit (a hole wider than the limit): the centre of the largest
       empty circle of the Delaunay triangulation of the interior sites, one circle per bar,
       circles at least a limit apart. A cut class has no death edge; its birth edge is used
@@ -203,20 +201,16 @@ def locate_defects(pattern: SitePattern, diagrams: Diagrams, *, top: int = 10) -
     l1 = diagrams.lengths(1)
     cut = np.asarray(diagrams.h1_truncated, dtype=bool)
     order1 = np.argsort(-l1, kind="stable")[:top]
-    tree = cKDTree(pts) if pts.shape[0] else None
-    used: set[tuple[int, int]] = set()
     circles = _empty_circles(pts, pattern.border, float(diagrams.max_scale)) if cut.any() else []
     for rank, k in enumerate(order1, start=1):
         b, d = (float(v) for v in diagrams.h1[k])
         i, j = (int(v) for v in diagrams.h1_edges[k])
         how = "birth edge"
         xy = 0.5 * (pts[i] + pts[j])
-        if not cut[k]:
-            found = _death_edge(pts, tree, d, used)
-            if found is not None:
-                i, j = found
-                used.add(found)
-                xy, how = 0.5 * (pts[i] + pts[j]), "death edge"
+        death_edge = diagrams.h1_death_edges[k]
+        if not cut[k] and death_edge[0] >= 0:
+            i, j = (int(v) for v in death_edge)
+            xy, how = 0.5 * (pts[i] + pts[j]), "death edge"
         elif circles:
             xy, how = circles.pop(0), "largest empty circle"
         rows.append(_defect_row("h1", rank, b, d, xy * spacing, i, j, bool(cut[k]), how))
@@ -672,27 +666,6 @@ def _defect_row(kind, rank, birth, death, xy, i, j, truncated, how) -> dict:
     return {"kind": kind, "rank": int(rank), "length": float(death - birth),
             "birth": float(birth), "death": float(death), "x": float(xy[0]), "y": float(xy[1]),
             "site_i": int(i), "site_j": int(j), "truncated": int(truncated), "located_by": how}
-
-
-def _death_edge(pts: np.ndarray, tree: cKDTree | None, death: float,
-                used: set) -> tuple[int, int] | None:
-    """The unused site pair whose float32 length is the death value (see locate_defects)."""
-    if tree is None:
-        return None
-    pairs = tree.query_pairs(death * (1 + 1e-6) + 1e-9, output_type="ndarray")
-    if pairs.shape[0] == 0:
-        return None
-    length = np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T).astype(np.float32)
-    gap = np.abs(length.astype(np.float64) - death)
-    tol = max(4 * np.spacing(np.float32(death)), 1e-7)
-    cand = np.flatnonzero(gap <= tol)
-    cand = [c for c in cand if (int(pairs[c, 0]), int(pairs[c, 1])) not in used]
-    if not cand:
-        return None
-    mids = 0.5 * (pts[pairs[cand, 0]] + pts[pairs[cand, 1]])
-    room, _ = tree.query(mids, k=1)
-    best = cand[int(np.argmax(room))]
-    return int(pairs[best, 0]), int(pairs[best, 1])
 
 
 def _empty_circles(pts: np.ndarray, border: np.ndarray, limit: float) -> list[np.ndarray]:
