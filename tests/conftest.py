@@ -31,7 +31,7 @@ def small_model(small_dataset, feature_cache, tmp_path_factory):
 
     model_dir = tmp_path_factory.mktemp("model") / "small"
     run = train_from_labels(
-        small_dataset, model_dir, cv=3, seed=3, cache_dir=feature_cache,
+        small_dataset, model_dir, cv=3, seed=3, cache_dir=feature_cache, figures=False,
         jobs=min(2, os.cpu_count() or 1),
     )
     return run
