@@ -62,7 +62,8 @@ def data():
 @pytest.fixture(scope="module")
 def trained(data):
     X, y, _, _ = data
-    return train_model(X, y, features=None, feature_set_name="numeric", cv=3, seed=0)
+    return train_model(X, y, features=None, feature_set_name="numeric", cv=3, seed=0,
+                       classifier="logistic")
 
 
 def _random_predictions(n=200, seed=1):
@@ -296,6 +297,7 @@ def test_validate_model_and_progress(data):
     X, y, X_test, y_test = data
     calls = []
     model = train_model(X, y, features=None, feature_set_name="numeric", cv=3,
+                        classifier="logistic",
                         progress=lambda step, done, total: calls.append((done, total)))
     assert calls[-1][0] == calls[-1][1]
     metrics = validate_model(model, X_test, y_test)
@@ -373,7 +375,7 @@ def test_untrusted_function_in_model_is_refused(data, tmp_path):
     # any callable at scoring time: the loader must name it and refuse.
     X, y, _, _ = data
     model = train_model(X, y, features=FunctionTransformer(func=copy.copy),
-                        feature_set_name="numeric", cv=3)
+                        feature_set_name="numeric", cv=3, classifier="logistic")
     folder = save_model(model, tmp_path / "model")
     with pytest.raises(ModelFileError, match=r"copy\.copy"):
         load_model(folder)
