@@ -32,6 +32,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
 from topoclass.errors import PatternError, TopoclassError
@@ -95,8 +97,12 @@ _SPECTRUM_TILE = 1024  # the spacing is measured on a central tile at most this 
 _DETECT_PX_PER_SPACING = 6.0  # block-average so that at least this many pixels span a spacing
 _FEATURE_SIGMA = 0.2  # feature smoothing, spacings (about the radius of a typical pore / sqrt 2)
 _BACKGROUND_SIGMA = 2.0  # illumination background, spacings
+_NARROW_SIGMA = 0.15  # centre of the blob filter, spacings
+_SURROUND_RATIO = 2.0  # surround / centre sigma of the blob filter
 _CANDIDATE_WINDOW = 0.25  # half-width of the local-maximum window, spacings
 _MIN_SEPARATION = 0.5  # spacings; of two maxima closer than this the lower is dropped
+_MERGE_DISTANCE = 0.75  # spacings; closer maxima may belong to one elongated pore ...
+_MERGE_SADDLE = 0.5  # ... and do when the filter between them stays above this of the lower
 _NOISE_FACTOR = 3.0  # sites stand this many noise sigmas above the background ...
 _RELATIVE_HEIGHT = 0.15  # ... and at least this fraction of the typical site height
 _MIN_SIGNAL = 3.5  # typical site height in noise sigmas below which there is no pattern
@@ -413,39 +419,39 @@ def _bond_spacing(xy: np.ndarray) -> float:
 # Detection
 
 
-def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str):
+def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str,
+            narrow: bool = True):
     """Sites (x, y) and polarity found with the filters set by ``spacing``."""
     f = max(1, int(spacing // _DETECT_PX_PER_SPACING))
     low = _block_mean(img, f)
     a = spacing / f
-    s_feat = _FEATURE_SIGMA * a
-    smooth = ndimage.gaussian_filter(low, s_feat, mode="reflect")
     background = _background(low, _BACKGROUND_SIGMA * a)
-    band = smooth - background
+    if narrow:
+        s_feat, s_sur = _NARROW_SIGMA * a, _SURROUND_RATIO * _NARROW_SIGMA * a
+        band = ndimage.gaussian_filter(low, s_feat, mode="reflect")
+        band -= ndimage.gaussian_filter(low, s_sur, mode="reflect")
+        gain = _dog_norm(s_feat, s_sur)
+    else:
+        s_feat = _FEATURE_SIGMA * a
+        band = ndimage.gaussian_filter(low, s_feat, mode="reflect") - background
+        gain = _gaussian_norm(s_feat)
+    # Noise of one pixel of ``band``: block averaging divides it by f, the filter by its norm.
+    sigma = noise / f * gain
     if polarity == "auto":
-        polarity = _polarity(band, a)
+        polarity = _polarity(band, a, sigma)
     sign = 1.0 if polarity == "bright" else -1.0
     if sign < 0:
         band = np.negative(band, out=band)
-
-    # Candidates: maxima of a window small enough not to reach the shoulder of a brighter
-    # neighbour (its corner is 0.35 spacing away); then at most one per half spacing.
-    peaks = _local_maxima(band, max(1, int(_CANDIDATE_WINDOW * a)), 0.0)
-    peaks = _separate(peaks, band[peaks[:, 0], peaks[:, 1]], _MIN_SEPARATION * a)
-    height = band[peaks[:, 0], peaks[:, 1]]
-    # Noise of one pixel of ``band``: block averaging divides it by f, the Gaussian by its norm.
-    sigma = noise / f * _gaussian_norm(s_feat)
-    n_expected = max(1, int(low.size / (np.sqrt(3.0) / 2.0 * a * a)))
-    typical = float(np.median(np.sort(height)[::-1][:n_expected])) if height.size else 0.0
-    if not typical > _MIN_SIGNAL * sigma:
+    peaks, height = _candidates(band, a, sigma)
+    if peaks is None:
         raise PatternError(
             f"{name}: no features stand clearly above the noise at a spacing of {spacing:.1f} px; "
             "check that the image shows a lattice pattern and the magnification"
         )
-    keep = height > max(_NOISE_FACTOR * sigma, _RELATIVE_HEIGHT * typical)
-    peaks = peaks[keep]
 
     yx = peaks + _quadratic_offset(band, peaks)
+    yx = _merge_elongated(band, yx, height, _MERGE_DISTANCE * a)
+    peaks = np.clip(np.rint(yx).astype(np.intp), 0, np.array(band.shape) - 1)
     yx = (yx + 0.5) * f - 0.5  # block centres back to full-resolution pixel coordinates
     near = (yx < spacing).any(axis=1) | (yx[:, 0] > img.shape[0] - 1 - spacing) | (
         yx[:, 1] > img.shape[1] - 1 - spacing
@@ -454,6 +460,39 @@ def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: 
         level = background[peaks[near, 0], peaks[near, 1]]
         yx[near] = _centroid(img, yx[near], level, sign, _CENTROID_RADIUS * spacing)
     return yx[:, ::-1].copy(), polarity
+
+
+def _merge_elongated(
+    band: np.ndarray, yx: np.ndarray, height: np.ndarray, distance: float
+) -> np.ndarray:
+    """Join maxima closer than ``distance`` that no wall separates into one site.
+
+    An elongated pore (two pores grown together) has two maxima of the blob filter about half
+    a spacing apart with no dip between them; two neighbouring pores, however close, have a
+    wall between them where the filter falls well below both. The joined site is the
+    height-weighted mean of its maxima.
+    """
+    if yx.shape[0] < 2:
+        return yx
+    pairs = cKDTree(yx).query_pairs(distance, output_type="ndarray")
+    if pairs.size == 0:
+        return yx
+    t = np.linspace(0.0, 1.0, 9)[1:-1]
+    p, q = yx[pairs[:, 0]], yx[pairs[:, 1]]
+    line = p[:, None, :] + t[None, :, None] * (q - p)[:, None, :]
+    coords = line.reshape(-1, 2).T
+    along = ndimage.map_coordinates(band, coords, order=1, mode="nearest").reshape(line.shape[:2])
+    low = np.minimum(height[pairs[:, 0]], height[pairs[:, 1]])
+    joined = pairs[along.min(axis=1) > _MERGE_SADDLE * low]
+    if joined.size == 0:
+        return yx
+    n = yx.shape[0]
+    graph = coo_matrix((np.ones(len(joined)), (joined[:, 0], joined[:, 1])), shape=(n, n))
+    _, label = connected_components(graph, directed=False)
+    w = np.maximum(height, 1e-12)
+    total = np.bincount(label, w)
+    out = np.column_stack([np.bincount(label, w * yx[:, k]) / total for k in range(2)])
+    return out
 
 
 def _block_mean(img: np.ndarray, f: int) -> np.ndarray:
@@ -497,24 +536,44 @@ def _bilinear_grid(small: np.ndarray, rr: np.ndarray, cc: np.ndarray) -> np.ndar
     return rows[:, c0] * (1 - tc)[None, :] + rows[:, c1] * tc[None, :]
 
 
-def _polarity(band: np.ndarray, spacing: float) -> str:
-    """"bright" or "dark": which extrema of the band-passed image stand out more.
+def _candidates(band: np.ndarray, a: float, sigma: float):
+    """Integer (row, col) maxima of ``band`` that pass as sites, and their heights.
 
-    Features are the minority phase of the area, so their extrema (one per cell) rise further
-    from the local mean than those of the matrix between them (two per cell, at the centres of
-    the triangles of sites). Medians over the expected number of sites make the decision
-    indifferent to a few vacancies or specks. Measured on a central tile to save time.
+    Maxima of a window small enough not to reach the shoulder of a brighter neighbour (its
+    corner is 0.35 spacing away), at most one per half spacing, standing a few noise sigmas
+    above zero and a fraction of the typical site height. ``(None, None)`` when the typical
+    height does not stand clearly above the noise (no pattern).
+    """
+    peaks = _local_maxima(band, max(1, int(_CANDIDATE_WINDOW * a)), 0.0)
+    peaks = _separate(peaks, band[peaks[:, 0], peaks[:, 1]], _MIN_SEPARATION * a)
+    height = band[peaks[:, 0], peaks[:, 1]]
+    n_expected = max(1, int(band.size / (np.sqrt(3.0) / 2.0 * a * a)))
+    typical = float(np.median(np.sort(height)[::-1][:n_expected])) if height.size else 0.0
+    if not typical > _MIN_SIGNAL * sigma:
+        return None, None
+    keep = height > max(_NOISE_FACTOR * sigma, _RELATIVE_HEIGHT * typical)
+    return peaks[keep], height[keep]
+
+
+def _polarity(band: np.ndarray, spacing: float, sigma: float) -> str:
+    """"bright" or "dark": the polarity whose sites have the more regular nearest neighbours.
+
+    Sites of the right polarity sit one per cell of the pattern; the extrema of the matrix
+    between them (at the centres of the triangles of sites, two per cell) are weaker, merge
+    and split with the local disorder, and give a much wider spread of nearest-neighbour
+    distances. Measured on a central tile to save time; a close-packed pattern whose gaps look
+    regular too is caught later by its too short bonds.
     """
     tile = _central_tile(band, 512)
-    d = max(1, int(_MIN_SEPARATION * spacing))
-    n = max(1, int(tile.size / (np.sqrt(3.0) / 2.0 * spacing * spacing)))
-    heights = []
+    spread = []
     for sign in (1.0, -1.0):
-        t = tile if sign > 0 else -tile
-        p = _local_maxima(t, d, 0.0)
-        h = np.sort(t[p[:, 0], p[:, 1]])[::-1][:n]
-        heights.append(float(np.median(h)) if h.size else 0.0)
-    return "bright" if heights[0] > heights[1] else "dark"
+        peaks, _ = _candidates(tile if sign > 0 else -tile, spacing, sigma)
+        if peaks is None or peaks.shape[0] < 8:
+            spread.append(np.inf)
+            continue
+        nn = cKDTree(peaks).query(peaks, k=2)[0][:, 1]
+        spread.append(float(np.std(nn) / np.mean(nn)))
+    return "bright" if spread[0] < spread[1] else "dark"
 
 
 def _pixel_noise(img: np.ndarray) -> float:
@@ -527,6 +586,19 @@ def _pixel_noise(img: np.ndarray) -> float:
     r, c = (t.shape[0] // 2) * 2, (t.shape[1] // 2) * 2
     d = 0.5 * (t[0:r:2, 0:c:2] - t[0:r:2, 1:c:2] - t[1:r:2, 0:c:2] + t[1:r:2, 1:c:2])
     return float(np.median(np.abs(d)) / 0.6745)
+
+
+def _dog_norm(s1: float, s2: float) -> float:
+    """L2 norm of the difference of scipy's 2-D Gaussian kernels of sigmas ``s1`` < ``s2``."""
+    radius = int(4.0 * s2 + 0.5)
+    x = np.arange(-radius, radius + 1, dtype=np.float64)
+    g1 = np.exp(-0.5 * (x / s1) ** 2) * (np.abs(x) <= int(4.0 * s1 + 0.5))
+    g2 = np.exp(-0.5 * (x / s2) ** 2)
+    g1 /= g1.sum()
+    g2 /= g2.sum()
+    # ||g1 (x) g1 - g2 (x) g2||^2 expands into products of 1-D sums (separable kernels).
+    sq = np.sum(g1 * g1) ** 2 + np.sum(g2 * g2) ** 2 - 2.0 * np.sum(g1 * g2) ** 2
+    return float(np.sqrt(max(sq, 0.0)))
 
 
 def _gaussian_norm(sigma: float) -> float:
