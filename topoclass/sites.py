@@ -7,14 +7,17 @@ How the sites are found
 1. Spacing: the first ring of the radially averaged power spectrum of a Hann-windowed tile;
    for a triangular lattice of spacing ``a`` it lies at ``k = 2 / (sqrt(3) a)`` cycles/px.
    Without a clear ring, the first peak of the radially averaged autocorrelation is used.
-2. Band-pass at the scale of the spacing, on a block-averaged copy holding about 6-12 px per
-   spacing (so the cost does not grow with the magnification): a Gaussian of 0.2 spacing for
-   the features minus a Gaussian of 2 spacings for the background (uneven illumination).
-3. Polarity ("auto"): whether the maxima or the minima of the band-passed image rise further
-   from the background. Features covering less than half of the area (the usual case) stand out
-   more than the matrix between them; close-packed features are caught by a later check.
-4. Local maxima at least half a spacing apart whose height above the background passes a
-   threshold set by a robust (MAD) pixel-noise estimate and by the typical feature height.
+2. Blob filter at the scale of the spacing, on a block-averaged copy holding about 6-12 px per
+   spacing (so the cost does not grow with the magnification): a Gaussian of 0.15 spacing
+   minus one of 0.3 spacing. Each pore is measured against its own walls, so small pores
+   among large ones and uneven illumination do not matter.
+3. Polarity ("auto"): the polarity whose candidate sites have the more regular
+   nearest-neighbour distances. The features sit one per cell; the extrema of the matrix
+   between them (two per cell) are weaker and merge or split with the local disorder.
+   Close-packed features, whose gaps look regular too, are caught by a later check.
+4. Local maxima at least half a spacing apart whose height passes a threshold set by a robust
+   (MAD) pixel-noise estimate and by the typical feature height. Maxima closer than 0.75
+   spacing with no wall between them (an elongated pore) are joined into one site.
 5. Sub-pixel centres by a 2-D quadratic fit of the 3x3 neighbourhood; sites within a spacing of
    the edge, where the smoothing sees past the frame, are re-centred by an intensity-weighted
    centroid on the unsmoothed image instead.
@@ -95,10 +98,9 @@ _MIN_SIDE = 16  # pixels; a smaller image cannot show several periods of any res
 _MIN_SPACING = 3.0  # pixels; finer patterns are not resolved as separate features
 _SPECTRUM_TILE = 1024  # the spacing is measured on a central tile at most this big
 _DETECT_PX_PER_SPACING = 6.0  # block-average so that at least this many pixels span a spacing
-_FEATURE_SIGMA = 0.2  # feature smoothing, spacings (about the radius of a typical pore / sqrt 2)
-_BACKGROUND_SIGMA = 2.0  # illumination background, spacings
-_NARROW_SIGMA = 0.15  # centre of the blob filter, spacings
+_FEATURE_SIGMA = 0.15  # centre of the blob filter, spacings (best for pores of ~0.3 spacing)
 _SURROUND_RATIO = 2.0  # surround / centre sigma of the blob filter
+_BACKGROUND_SIGMA = 2.0  # grey level of the matrix for the centroids at the edge, spacings
 _CANDIDATE_WINDOW = 0.25  # half-width of the local-maximum window, spacings
 _MIN_SEPARATION = 0.5  # spacings; of two maxima closer than this the lower is dropped
 _MERGE_DISTANCE = 0.75  # spacings; closer maxima may belong to one elongated pore ...
@@ -419,24 +421,20 @@ def _bond_spacing(xy: np.ndarray) -> float:
 # Detection
 
 
-def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str,
-            narrow: bool = True):
+def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str):
     """Sites (x, y) and polarity found with the filters set by ``spacing``."""
     f = max(1, int(spacing // _DETECT_PX_PER_SPACING))
     low = _block_mean(img, f)
     a = spacing / f
-    background = _background(low, _BACKGROUND_SIGMA * a)
-    if narrow:
-        s_feat, s_sur = _NARROW_SIGMA * a, _SURROUND_RATIO * _NARROW_SIGMA * a
-        band = ndimage.gaussian_filter(low, s_feat, mode="reflect")
-        band -= ndimage.gaussian_filter(low, s_sur, mode="reflect")
-        gain = _dog_norm(s_feat, s_sur)
-    else:
-        s_feat = _FEATURE_SIGMA * a
-        band = ndimage.gaussian_filter(low, s_feat, mode="reflect") - background
-        gain = _gaussian_norm(s_feat)
+    # Centre-surround blob filter (difference of Gaussians). The surround of 0.3 spacing reaches
+    # the walls around a pore but hardly its neighbours, so a small pore among large ones is
+    # measured against its own walls, not against the mean grey level of the field (which
+    # large neighbours pull below a small pore's centre); slow illumination cancels as well.
+    s_feat, s_sur = _FEATURE_SIGMA * a, _SURROUND_RATIO * _FEATURE_SIGMA * a
+    band = ndimage.gaussian_filter(low, s_feat, mode="reflect")
+    band -= ndimage.gaussian_filter(low, s_sur, mode="reflect")
     # Noise of one pixel of ``band``: block averaging divides it by f, the filter by its norm.
-    sigma = noise / f * gain
+    sigma = noise / f * _dog_norm(s_feat, s_sur)
     if polarity == "auto":
         polarity = _polarity(band, a, sigma)
     sign = 1.0 if polarity == "bright" else -1.0
@@ -457,6 +455,7 @@ def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: 
         yx[:, 1] > img.shape[1] - 1 - spacing
     )
     if near.any():
+        background = _background(low, _BACKGROUND_SIGMA * a)
         level = background[peaks[near, 0], peaks[near, 1]]
         yx[near] = _centroid(img, yx[near], level, sign, _CENTROID_RADIUS * spacing)
     return yx[:, ::-1].copy(), polarity
@@ -599,15 +598,6 @@ def _dog_norm(s1: float, s2: float) -> float:
     # ||g1 (x) g1 - g2 (x) g2||^2 expands into products of 1-D sums (separable kernels).
     sq = np.sum(g1 * g1) ** 2 + np.sum(g2 * g2) ** 2 - 2.0 * np.sum(g1 * g2) ** 2
     return float(np.sqrt(max(sq, 0.0)))
-
-
-def _gaussian_norm(sigma: float) -> float:
-    """L2 norm of scipy's 2-D Gaussian kernel: the factor by which it scales white noise."""
-    radius = int(4.0 * sigma + 0.5)
-    x = np.arange(-radius, radius + 1, dtype=np.float64)
-    g = np.exp(-0.5 * (x / sigma) ** 2)
-    g /= g.sum()
-    return float(np.sum(g * g))  # separable: ||g (x) g||_2 = sum(g^2)
 
 
 def _local_maxima(filtered: np.ndarray, min_distance: int, threshold: float) -> np.ndarray:
