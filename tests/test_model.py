@@ -397,3 +397,22 @@ def test_missing_folder_and_card(tmp_path):
     (tmp_path / "empty").mkdir()
     with pytest.raises(ModelFileError, match="card.json is missing"):
         load_model(tmp_path / "empty")
+
+
+def test_range_check_flags_values_beyond_the_training_range_and_says_which():
+    from sklearn.preprocessing import FunctionTransformer
+
+    from topoclass.model import RangeNovelty
+
+    rng = np.random.default_rng(0)
+    train = np.column_stack([rng.uniform(8, 20, 50), rng.uniform(1.0, 1.2, 50)])
+    context = FunctionTransformer(feature_names_out="one-to-one")
+    check = RangeNovelty(context, tolerance=0.25).fit(train)
+    lo, hi = train.min(axis=0), train.max(axis=0)
+    inside = np.array([[lo[0] / 1.2, hi[1] * 1.2], [10.0, 1.1]])
+    outside = np.array([[hi[0] * 1.3, 1.1], [10.0, lo[1] / 2]])
+    assert np.all(check.score(inside) <= 1.0)
+    assert np.all(check.score(outside) > 1.0)
+    reasons = check.reasons(outside)
+    assert "x0" in reasons[0][0] and "x1" in reasons[1][0] and check.reasons(inside) == [[], []]
+    assert np.all(check.score(np.array([[0.0, 1.1], [np.nan, 1.1]])) == np.inf)

@@ -546,3 +546,15 @@ def test_feature_union_in_a_cross_validated_pipeline():
     model = make_pipeline(make_features("all"), StandardScaler(), LogisticRegression())
     scores = cross_val_score(model, records, y, cv=3)
     assert scores.shape == (3,) and np.all((scores >= 0) & (scores <= 1))
+
+
+def test_acquisition_context_gives_spacing_in_pixels_and_site_density():
+    from topoclass.vectorize import AcquisitionContext
+
+    records = [Texture(_diagrams(spacing=12.5), {"density_per_spacing2": 1.15}),
+               Texture(_diagrams(spacing=30.0), {})]
+    values = AcquisitionContext().fit(records).transform(records)
+    np.testing.assert_array_equal(values[0], [12.5, 1.15])
+    assert values[1, 0] == 30.0 and np.isnan(values[1, 1])
+    assert list(AcquisitionContext().fit(records).get_feature_names_out()) == [
+        "spacing_px", "site_density"]

@@ -508,6 +508,55 @@ class MahalanobisNovelty:
         return self.score(X) > 1.0
 
 
+class RangeNovelty:
+    """Flags images whose acquisition measures lie outside the range seen in training.
+
+    A Mahalanobis distance over hundreds of features hardly moves when one feature is far off,
+    yet a single measure such as the site spacing in pixels (the magnification) or the site
+    density (how much of the frame holds a lattice at all) is enough to say the model has never
+    seen such an image. ``context`` is a transformer giving a few positive, named columns
+    (e.g. :class:`topoclass.vectorize.AcquisitionContext`); ``fit`` records each column's
+    training minimum and maximum, and an image is unfamiliar when a value lies beyond that range
+    by more than the relative ``tolerance``.
+
+    ``score(X)``: the largest ratio ``max(lo / v, v / hi)`` over the columns, divided by
+    ``1 + tolerance``; above 1 means unfamiliar.
+    """
+
+    def __init__(self, context, *, tolerance: float = 0.25):
+        self.context = context
+        self.tolerance = tolerance
+
+    def fit(self, X, y=None) -> RangeNovelty:
+        self.context_ = clone(self.context).fit(X, y)
+        values = np.asarray(self.context_.transform(X), dtype=np.float64)
+        self.names_ = [str(n) for n in self.context_.get_feature_names_out()]
+        self.low_ = np.nanmin(values, axis=0)
+        self.high_ = np.nanmax(values, axis=0)
+        return self
+
+    def ratios(self, X) -> np.ndarray:
+        """Per image and column, how far beyond the training range (1 = at or inside it)."""
+        v = np.asarray(self.context_.transform(X), dtype=np.float64)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = np.fmax(np.where(v > 0, self.low_ / v, np.inf), v / self.high_)
+        return np.where(np.isfinite(v), np.maximum(r, 1.0), np.inf)
+
+    def score(self, X) -> np.ndarray:
+        return self.ratios(X).max(axis=1) / (1.0 + self.tolerance)
+
+    def reasons(self, X) -> list[list[str]]:
+        """Per image, the measures outside the training range, in words."""
+        v = np.asarray(self.context_.transform(X), dtype=np.float64)
+        out = []
+        for row, ratio in zip(v, self.ratios(X), strict=True):
+            out.append([f"{name} {x:.3g} outside the training range {lo:.3g}-{hi:.3g}"
+                        for name, x, r, lo, hi in zip(self.names_, row, ratio, self.low_,
+                                                      self.high_, strict=True)
+                        if r > 1.0 + self.tolerance])
+        return out
+
+
 # --------------------------------------------------------------------------------------------
 # Training and selection
 # --------------------------------------------------------------------------------------------
@@ -547,6 +596,7 @@ class TrainedModel:
     calibration_reason: str
     class_counts: dict
     settings: dict
+    range_check: RangeNovelty | None = None
 
     def predict_proba(self, X) -> np.ndarray:
         """Calibrated probability of each class, columns in the order of ``classes``."""
@@ -557,8 +607,29 @@ class TrainedModel:
         return self.classes[np.argmax(self.predict_proba(X), axis=1)]
 
     def unfamiliarity(self, X) -> np.ndarray:
-        """Novelty score per image; above 1 means farther from the training set than allowed."""
-        return self.novelty.score(X)
+        """Novelty score per image; above 1 means farther from the training set than allowed.
+
+        The larger of the Mahalanobis score over the model's features and, when the model has
+        one, the range check of the acquisition measures (:class:`RangeNovelty`).
+        """
+        score = self.novelty.score(X)
+        if self.range_check is not None:
+            score = np.maximum(score, self.range_check.score(X))
+        return score
+
+    def unfamiliar_reasons(self, X) -> list[list[str]]:
+        """Per image, why it is unfamiliar, in words (empty for familiar images)."""
+        mahalanobis = self.novelty.score(X)
+        ranges = (self.range_check.reasons(X) if self.range_check is not None
+                  else [[] for _ in range(len(mahalanobis))])
+        out = []
+        for m, r in zip(mahalanobis, ranges, strict=True):
+            words = list(r)
+            if m > 1.0:
+                words.append(f"features far from every training image (distance {m:.2f} of "
+                             "the allowed)")
+            out.append(words)
+        return out
 
     def is_unfamiliar(self, X) -> np.ndarray:
         return self.unfamiliarity(X) > 1.0
@@ -566,7 +637,7 @@ class TrainedModel:
 
 def train_model(X, y, groups=None, *, features, feature_set_name: str,
                 classifier: str = DEFAULT_CLASSIFIER, cv: int = 5, calibration: str = "auto",
-                seed: int = 0, progress=None) -> TrainedModel:
+                seed: int = 0, progress=None, context=None) -> TrainedModel:
     """Cross-validate, then fit the calibrated model and its novelty detector on all data.
 
     Parameters
@@ -592,6 +663,9 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
         Seed of the folds and of every random step.
     progress : None, bool or callable
         True shows a rich progress bar; a callable is called as ``progress(step, done, total)``.
+    context : scikit-learn transformer or None
+        Acquisition measures for the range check of :class:`RangeNovelty` (for example
+        :class:`topoclass.vectorize.AcquisitionContext`); None for none.
 
     Returns
     -------
@@ -606,12 +680,13 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
         bar.advance(cv)
         return _fit_final(pipeline, X, y, groups, report, feature_set_name=feature_set_name,
                           classifier=classifier, method=method, reason=reason,
-                          calibration_requested=calibration, cv=cv, seed=seed, bar=bar)
+                          calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
+                          context=context)
 
 
 def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]],
                  cv: int = 5, seed: int = 0, calibration: str = "auto",
-                 progress=None) -> tuple[TrainedModel, list[dict]]:
+                 progress=None, context=None) -> tuple[TrainedModel, list[dict]]:
     """Compare (feature set, transformer, classifier) candidates and train the best.
 
     Every candidate is cross-validated on the same folds exactly as :func:`train_model` would
@@ -651,7 +726,8 @@ def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]
         model = _fit_final(pipeline, X, y, groups, report,
                            feature_set_name=rows[best]["feature_set"],
                            classifier=rows[best]["classifier"], method=method, reason=reason,
-                           calibration_requested=calibration, cv=cv, seed=seed, bar=bar)
+                           calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
+                           context=context)
     model.settings["selected_from"] = [dict(r) for r in rows]
     return model, rows
 
@@ -718,7 +794,13 @@ def save_model(model: TrainedModel, directory: str | Path, *,
         "novelty": {"method": "Mahalanobis distance, Ledoit-Wolf covariance, scaled features",
                     "quantile": model.novelty.quantile, "margin": model.novelty.margin,
                     "threshold": model.novelty.threshold_,
-                    "design_rate": model.novelty.design_rate_},
+                    "design_rate": model.novelty.design_rate_,
+                    "ranges": None if model.range_check is None else {
+                        name: [float(lo), float(hi)] for name, lo, hi in zip(
+                            model.range_check.names_, model.range_check.low_,
+                            model.range_check.high_, strict=True)},
+                    "range_tolerance": None if model.range_check is None
+                    else model.range_check.tolerance},
         "settings": _jsonable(model.settings),
         "cv": _jsonable(model.cv_report.summary()),
         "versions": package_versions(),
@@ -923,12 +1005,13 @@ def _fit_calibrated(pipeline, X, y, groups, method, cv, seed) -> CalibratedClass
 
 
 def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, method, reason,
-               calibration_requested, cv, seed, bar) -> TrainedModel:
+               calibration_requested, cv, seed, bar, context=None) -> TrainedModel:
     y = np.asarray(y)
     groups_arr = None if groups is None else np.asarray(groups)
     bar.step("fitting the novelty detector")
     preprocess = Pipeline(clone(pipeline).steps[:-1])
     novelty = MahalanobisNovelty(preprocess).fit(X, y, folds=report.fold)
+    range_check = None if context is None else RangeNovelty(context).fit(X, y)
     bar.advance(cv)
     bar.step("fitting the calibrated model")
     estimator = _fit_calibrated(pipeline, X, y, groups_arr, method, cv, seed)
@@ -951,7 +1034,7 @@ def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, 
         feature_set_name=feature_set_name, classifier=classifier, calibration=method,
         calibration_reason=reason,
         class_counts={str(c): int(n) for c, n in zip(classes, counts, strict=True)},
-        settings=settings,
+        settings=settings, range_check=range_check,
     )
 
 

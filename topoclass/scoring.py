@@ -180,6 +180,8 @@ def _score_row(model, classes: list[str], result: TextureResult) -> dict[str, ob
     try:
         proba = np.asarray(model.predict_proba([texture]), dtype=float)[0]
         unfamiliarity = float(np.asarray(model.unfamiliarity([texture]))[0])
+        reasons = (model.unfamiliar_reasons([texture])[0]
+                   if hasattr(model, "unfamiliar_reasons") else [])
     except Exception as exc:  # keep the batch going; the row says what happened
         row.update(status="error", message=f"{result.path}: scoring failed: {exc}")
         return row
@@ -195,8 +197,8 @@ def _score_row(model, classes: list[str], result: TextureResult) -> dict[str, ob
     row["n_sites"] = measures.get("n_sites", "")
     messages = list(result.notes)
     if unfamiliarity > 1.0:
-        messages.insert(0, f"unlike the training images (unfamiliarity {unfamiliarity:.2f}); "
-                           "check by eye")
+        why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
+        messages.insert(0, f"unlike the training images ({why}); check by eye")
     row["message"] = "; ".join(messages)
     return row
 

@@ -548,6 +548,32 @@ class OrderMeasureFeatures(_RecordTransformer):
         return self._output(rows)
 
 
+class AcquisitionContext(_RecordTransformer):
+    """How an image was taken, not what it shows: the site spacing in pixels and site density.
+
+    Not a classification feature — every feature above is dimensionless so that one model
+    serves all magnifications — but what a model's range check
+    (:class:`topoclass.model.RangeNovelty`) compares with its training set: a spacing in pixels
+    far outside the training range means another magnification; a low density of sites per
+    spacing² (a triangular lattice has 2/√3 ≈ 1.155) means most of the frame holds no lattice,
+    as in a photograph of something else.
+
+    Columns: ``spacing_px`` and ``site_density`` (the ``density_per_spacing2`` order measure).
+    """
+
+    def fit(self, X, y=None):
+        _textures_of(X)
+        self.feature_names_out_ = ["spacing_px", "site_density"]
+        return self
+
+    def transform(self, X) -> np.ndarray:
+        check_is_fitted(self, "feature_names_out_")
+        rows = [np.array([float(t.diagrams.spacing),
+                          _as_float(t.order.get("density_per_spacing2", np.nan))])
+                for t in _textures_of(X)]
+        return self._output(rows)
+
+
 def make_features(name: str = "all", **params) -> FeatureUnion:
     """Build a named feature set as one scikit-learn transformer.
 

@@ -26,7 +26,7 @@ from topoclass.model import (
     train_model,
     validate_model,
 )
-from topoclass.vectorize import FEATURE_SETS, make_features
+from topoclass.vectorize import FEATURE_SETS, AcquisitionContext, make_features
 
 #: Feature sets compared by ``select=True``, each with the chosen classifier.
 SELECT_FEATURE_SETS = ("two-bar", "order", "topology", "all")
@@ -141,13 +141,13 @@ def train_from_labels(
         ]
         model, comparison = select_model(
             textures, y, groups, candidates=candidates, cv=cv, seed=seed,
-            calibration=calibration, progress=progress,
+            calibration=calibration, progress=progress, context=AcquisitionContext(),
         )
     else:
         model = train_model(
             textures, y, groups, features=make_features(feature_set),
             feature_set_name=feature_set, classifier=classifier, cv=cv,
-            calibration=calibration, seed=seed, progress=progress,
+            calibration=calibration, seed=seed, progress=progress, context=AcquisitionContext(),
         )
     model.settings["features"] = dataclasses.asdict(settings)
     if model_dir is None:
