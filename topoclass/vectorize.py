@@ -35,6 +35,7 @@ from sklearn.pipeline import FeatureUnion
 from sklearn.utils.validation import check_is_fitted
 
 from topoclass.errors import TopoclassError
+from topoclass.order import ORDER_MEASURE_KEYS
 from topoclass.persistence import Diagrams
 
 __all__ = [
@@ -52,16 +53,10 @@ __all__ = [
     "make_features",
 ]
 
-#: Classic order measures used by default, in this column order.
-DEFAULT_ORDER_KEYS: tuple[str, ...] = (
-    "psi6_global",
-    "psi6_local_mean",
-    "defect_fraction",
-    "n5_fraction",
-    "n7_fraction",
-    "nn_cv",
-    "clark_evans_r",
-)
+#: Classic order measures used by default, in this column order: the seven that describe the
+#: pattern (the others of :data:`topoclass.order.ORDER_MEASURE_KEYS` describe the acquisition,
+#: such as the lattice angle, or repeat these).
+DEFAULT_ORDER_KEYS: tuple[str, ...] = ORDER_MEASURE_KEYS[:7]
 
 #: Named feature sets accepted by :func:`make_features`.
 FEATURE_SETS: dict[str, str] = {
