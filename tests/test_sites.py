@@ -16,7 +16,13 @@ from skimage.feature import peak_local_max
 
 from topoclass.errors import PatternError, TopoclassError
 from topoclass.sites import SitePattern, _local_maxima, estimate_spacing, find_sites
-from topoclass.synth import hexagonal_lattice, render_micrograph
+from topoclass.synth import (
+    KINDS,
+    draw_sample,
+    hexagonal_lattice,
+    make_micrograph,
+    render_micrograph,
+)
 
 # --------------------------------------------------------------------------------------------
 # helpers
@@ -95,6 +101,29 @@ def test_synthetic_lattice_sites_positions_and_spacing(spacing, polarity, angle,
     # The spectral starting value alone: first ring at k = 2 / (sqrt(3) a) for a triangular
     # lattice (elementary reciprocal-lattice geometry, common practice).
     assert abs(estimate_spacing(image) / spacing - 1) <= 0.03
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_demo_micrographs_at_the_hard_end(kind):
+    # Invented demo micrographs (synth.make_micrograph) with the sample drawn at the hard end of
+    # draw_sample's ranges: noise 0.18 of the contrast (times 0.8-1.25 per image), the lowest
+    # contrast 0.45, small pores (0.27 spacing, spread 0.15) at 9-10 px spacing, blur 1 px; the
+    # disordered class densest (minimum distance 0.68) and hardly relaxed. Ground truth: the
+    # coordinates the generator drew the pores at (truth["sites"]), not anything the finder
+    # computes. Target: recall and precision >= 0.98, and the dark pores found as dark.
+    sample = draw_sample(kind, seed=1)
+    sample.update(spacing_range_px=[9.0, 10.0], radius_fraction=0.27, radius_spread=0.15,
+                  blur_px=1.0, noise=0.18, contrast=0.45, edge_width_px=1.2)
+    if kind == "disordered":
+        sample.update(min_distance=0.68, relax_steps=4)
+    for seed in range(3):
+        image, truth = make_micrograph(kind, size=256, seed=seed, sample=sample)
+        pattern = find_sites(image)
+        assert pattern.polarity == "dark"
+        recall, precision, _ = _match(pattern.xy, np.array(truth["sites"]),
+                                      truth["spacing_px"], image.shape)
+        assert recall >= 0.98, (seed, recall)
+        assert precision >= 0.98, (seed, precision)
 
 
 def test_wrong_starting_spacing_is_corrected_by_bond_lengths():

@@ -103,9 +103,11 @@ _SURROUND_RATIO = 2.0  # surround / centre sigma of the blob filter
 _BACKGROUND_SIGMA = 2.0  # grey level of the matrix for the centroids at the edge, spacings
 _CANDIDATE_WINDOW = 0.25  # half-width of the local-maximum window, spacings
 _MIN_SEPARATION = 0.5  # spacings; of two maxima closer than this the lower is dropped
-_MERGE_DISTANCE = 0.75  # spacings; closer maxima may belong to one elongated pore ...
-_MERGE_SADDLE = 0.5  # ... and do when the filter between them stays above this of the lower
-_NOISE_FACTOR = 3.0  # sites stand this many noise sigmas above the background ...
+_MERGE_DISTANCE = 0.65  # spacings; closer maxima may belong to one elongated pore ...
+_MERGE_SADDLE = 0.7  # ... and do when the filter between them stays above this of the lower
+# A low bar is safe: a noise maximum on a wall or in a vacancy has the filter's negative or zero
+# response to climb first, and one within half a spacing of a pore is absorbed by it.
+_NOISE_FACTOR = 2.0  # sites stand this many noise sigmas above zero ...
 _RELATIVE_HEIGHT = 0.15  # ... and at least this fraction of the typical site height
 _MIN_SIGNAL = 3.5  # typical site height in noise sigmas below which there is no pattern
 _CENTROID_RADIUS = 0.45  # spacings; window of the centroid used near the edge
