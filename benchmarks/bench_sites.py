@@ -42,7 +42,8 @@ def cpu_model() -> str:
     return platform.processor() or platform.machine()
 
 
-def speed(profile: bool) -> tuple[float, int, float, str]:
+def speed(profile: bool = False, repeats: int = 3) -> tuple[float, int, float, str]:
+    """Best-of-``repeats`` seconds, sites, spacing and an optional profile (benchmarks/run.py)."""
     shape, spacing = (2048, 2048), 12.0
     xy = hexagonal_lattice(shape, spacing, angle=11.0, jitter=0.03, margin=-spacing, seed=0)
     image = render_micrograph(xy, shape, 0.3 * spacing, blur=1.0, noise=0.1, illumination=0.3,
@@ -50,7 +51,7 @@ def speed(profile: bool) -> tuple[float, int, float, str]:
     image = np.round(image * 65535).astype(np.uint16)
     times = []
     with threadpool_limits(1):
-        for _ in range(3):
+        for _ in range(repeats):
             t0 = time.perf_counter()
             pattern = find_sites(image)
             times.append(time.perf_counter() - t0)
