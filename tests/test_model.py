@@ -416,3 +416,23 @@ def test_range_check_flags_values_beyond_the_training_range_and_says_which():
     reasons = check.reasons(outside)
     assert "x0" in reasons[0][0] and "x1" in reasons[1][0] and check.reasons(inside) == [[], []]
     assert np.all(check.score(np.array([[0.0, 1.1], [np.nan, 1.1]])) == np.inf)
+
+
+def test_probabilities_are_limited_by_the_size_of_the_training_set():
+    from topoclass.model import limit_by_evidence
+
+    # Laplace's rule of succession (common practice): n images without an error still leave
+    # an error rate of about 1/(n+2); one uniform pseudo-image keeps p away from 0 and 1.
+    proba = np.array([[1.0, 0.0, 0.0], [0.2, 0.5, 0.3]])
+    limited = limit_by_evidence(proba, 9)
+    np.testing.assert_allclose(limited.sum(axis=1), 1.0)
+    np.testing.assert_allclose(limited[0], [(9 + 1 / 3) / 10, (1 / 3) / 10, (1 / 3) / 10])
+    assert np.array_equal(limited.argmax(axis=1), proba.argmax(axis=1))
+    # Two well-separated clouds: even a perfect classifier never claims certainty.
+    rng = np.random.default_rng(0)
+    X = np.vstack([rng.normal(0, 0.1, (20, 2)), rng.normal(5, 0.1, (20, 2))])
+    y = np.repeat(["a", "b"], 20)
+    model = train_model(X, y, features=None, feature_set_name="numeric", cv=3, seed=0)
+    p = model.predict_proba(X)
+    assert p.max() <= 1 - 1 / (2 * 41) + 1e-12 and p.min() >= 1 / (2 * 41) - 1e-12
+    assert model.cv_report.oof_proba.max() < 1.0

@@ -350,6 +350,22 @@ class CVReport:
         return metrics_markdown(self.metrics, title=title, subtitle=how)
 
 
+def limit_by_evidence(proba, n_train: int) -> np.ndarray:
+    """Mix class probabilities with one uniform pseudo-image: ``(n p + 1/K) / (n + 1)``.
+
+    A classifier trained on ``n`` images can separate them perfectly, and calibration on such
+    folds then drives probabilities to exactly 0 and 1 (a temperature fitted to zero errors
+    tends to zero). No finite labelled set supports certainty: with ``n`` images and no error,
+    Laplace's rule of succession still leaves an error rate of about ``1 / (n + 2)``. Adding one
+    uniform pseudo-observation keeps every probability in
+    ``[1 / (K (n + 1)), 1 - (K - 1) / (K (n + 1))]``, keeps the ranking and the sum of 1, and
+    fades as the labelled set grows.
+    """
+    proba = np.asarray(proba, dtype=np.float64)
+    n = float(n_train)
+    return (n * proba + 1.0 / proba.shape[1]) / (n + 1.0)
+
+
 def cross_validate_model(pipeline, X, y, groups=None, *, cv: int = 5, seed: int = 0,
                          calibration: str | None = None) -> CVReport:
     """Out-of-fold class probabilities and metrics of a pipeline.
@@ -404,6 +420,8 @@ def cross_validate_model(pipeline, X, y, groups=None, *, cv: int = 5, seed: int 
         else:
             model = _fit_calibrated(pipeline, X_tr, y_tr, g_tr, calibration, cv, seed)
         proba = model.predict_proba(_safe_indexing(X, test))
+        if calibration is not None:  # the shipped path: exactly what TrainedModel returns
+            proba = limit_by_evidence(proba, len(train))
         # A class absent from a training part gets probability 0 in that fold.
         oof[np.ix_(test, np.searchsorted(classes, model.classes_))] = proba
         fold[test] = k
@@ -599,8 +617,12 @@ class TrainedModel:
     range_check: RangeNovelty | None = None
 
     def predict_proba(self, X) -> np.ndarray:
-        """Calibrated probability of each class, columns in the order of ``classes``."""
-        return self.estimator.predict_proba(X)
+        """Calibrated probability of each class, columns in the order of ``classes``.
+
+        Limited by the size of the training set (:func:`limit_by_evidence`), as in the
+        cross-validation that measured them.
+        """
+        return limit_by_evidence(self.estimator.predict_proba(X), self.settings["n_samples"])
 
     def predict(self, X) -> np.ndarray:
         """The most probable class of each image."""
