@@ -521,6 +521,8 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
 
 
 def machine_info() -> dict:
+    from importlib.metadata import PackageNotFoundError, version
+
     import joblib
     import persim
     import ripser
@@ -528,8 +530,15 @@ def machine_info() -> dict:
     import skimage
     import sklearn
 
-    blas = [f"{p.get('internal_api')} {p.get('version')} ({p.get('threading_layer', '')}, "
-            f"{p.get('num_threads')} threads)" for p in threadpool_info()]
+    def _version(name: str) -> str:
+        try:
+            return version(name)
+        except PackageNotFoundError:
+            return "?"
+
+    blas = [f"{p.get('internal_api')} {p.get('version') or ''} "
+            f"({Path(p.get('filepath', '?')).name}, {p.get('num_threads')} threads by default)"
+            for p in threadpool_info()]
     return {
         "cores": os.cpu_count(),
         "usable_cores": len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else None,
@@ -537,8 +546,9 @@ def machine_info() -> dict:
         "python": platform.python_version(),
         "versions": {"numpy": np.__version__, "scipy": scipy.__version__,
                      "scikit-learn": sklearn.__version__, "scikit-image": skimage.__version__,
-                     "ripser": getattr(ripser, "__version__", "?"),
-                     "persim": getattr(persim, "__version__", "?"), "joblib": joblib.__version__},
+                     "ripser": getattr(ripser, "__version__", None) or _version("ripser"),
+                     "persim": getattr(persim, "__version__", None) or _version("persim"),
+                     "joblib": joblib.__version__, "threadpoolctl": _version("threadpoolctl")},
         "thread_pools": blas,
         "openblas_coretype": os.environ.get("OPENBLAS_CORETYPE"),
     }
