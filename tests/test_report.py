@@ -286,6 +286,35 @@ def test_feature_importance_equals_sklearn_permutation_importance(feature_step):
     np.testing.assert_allclose(ours["importances"], ref.importances, rtol=1e-9, atol=1e-12)
     assert ours["names"] == [f"x{k}" for k in range(X.shape[1])]
     assert ours["importances_mean"].max() > 0.01
+    # Every wine column is its own family, so permuting families is permuting columns.
+    grouped = report.feature_importance(model, X, y, n_repeats=3, seed=4, grouped=True)
+    np.testing.assert_allclose(grouped["importances"], ref.importances, rtol=1e-9, atol=1e-12)
+
+
+def test_grouped_importance_permutes_a_family_together():
+    # Reference: sklearn.inspection.permutation_importance on the raw columns, where the raw
+    # data holds each family once; the feature step copies a raw column into a family of
+    # identical columns, so permuting the family is permuting that raw column.
+    from sklearn.calibration import CalibratedClassifierCV
+    from sklearn.datasets import load_wine
+    from sklearn.inspection import permutation_importance
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import Pipeline
+    from sklearn.preprocessing import FunctionTransformer, StandardScaler
+
+    X, y = load_wine(return_X_y=True)
+    X = X[:, :3]
+    names = ["h1_pimage_b0.10_p0.20", "h1_pimage_b0.10_p0.40", "psi6_global", "nn_cv"]
+    step = FunctionTransformer(lambda a: a[:, [0, 0, 1, 2]],
+                               feature_names_out=lambda *_: np.array(names, dtype=object))
+    pipe = Pipeline([("features", step), ("scale", StandardScaler()),
+                     ("classify", LogisticRegression(max_iter=500))])
+    model = CalibratedClassifierCV(pipe, method="sigmoid", cv=3).fit(X, y)
+    ours = report.feature_importance(model, X, y, n_repeats=3, seed=2, grouped=True)
+    ref = permutation_importance(model, X, y, scoring="neg_log_loss", n_repeats=3,
+                                 random_state=2)
+    assert ours["names"] == ["h1_pimage", "psi6_global", "nn_cv"]
+    np.testing.assert_allclose(ours["importances"], ref.importances, rtol=1e-9, atol=1e-12)
 
 
 def test_training_figures_of_a_fitted_model(tmp_path):

@@ -30,6 +30,7 @@ import csv
 import html
 import io
 import math
+import re
 from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
@@ -386,7 +387,8 @@ def plot_per_class(metrics: dict, *, title: str = "Per class") -> Figure:
     return fig
 
 
-def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0) -> dict:
+def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0,
+                       grouped: bool = False) -> dict:
     """Permutation importance of the model's feature columns (log-loss), readable names.
 
     The raw inputs are per-image records, so whole feature columns only exist after the
@@ -407,6 +409,14 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0) -> dic
         Training inputs (as the feature step takes them) and labels.
     n_repeats, seed
         Permutations per column and their seed.
+    grouped : bool
+        Permute whole feature families together (:func:`feature_family`: every pixel of the H1
+        persistence image, every point of one landscape or Betti curve) instead of single
+        columns. Neighbouring pixels of a persistence image are strongly correlated, and the
+        permutation importance of one column of a correlated block is close to zero even when
+        the block matters (the scikit-learn user guide warns of this); a family is also what
+        a person can act on. It is also far cheaper: tens of families instead of hundreds of
+        columns.
 
     Returns
     -------
@@ -435,14 +445,32 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0) -> dic
     if any(m.shape != mats[0].shape for m in mats):
         raise TopoclassError("the calibrated members give feature matrices of different "
                              "shapes; permutation importance needs one set of columns")
-    wrapper = _PermutedColumns(mats, rests, estimator.classes_)
-    index = np.repeat(np.arange(mats[0].shape[0])[:, None], mats[0].shape[1], axis=1)
+    column_group = np.arange(mats[0].shape[1])
+    if grouped:
+        families = [feature_family(n) for n in names]
+        unique = list(dict.fromkeys(families))
+        column_group = np.array([unique.index(f) for f in families])
+        names = unique
+    wrapper = _PermutedColumns(mats, rests, estimator.classes_, column_group)
+    index = np.repeat(np.arange(mats[0].shape[0])[:, None], len(names), axis=1)
     result = permutation_importance(wrapper, index, np.asarray(y), scoring="neg_log_loss",
                                     n_repeats=n_repeats, random_state=seed)
     baseline = -_neg_log_loss(wrapper, index, np.asarray(y))
     return {"names": names, "importances_mean": result.importances_mean,
             "importances_std": result.importances_std, "importances": result.importances,
             "baseline_log_loss": baseline}
+
+
+def feature_family(name: str) -> str:
+    """The family of a feature name: the name without its grid coordinates.
+
+    ``h1_pimage_b0.95_p0.30`` → ``h1_pimage``; ``h1_landscape_k2_t0.85`` → ``h1_landscape_k2``;
+    ``betti1_t1.20`` → ``betti1``; a barcode statistic or order measure is its own family.
+    """
+    parts = name.split("_")
+    while len(parts) > 1 and re.fullmatch(r"[btp]-?\d+(\.\d+)?", parts[-1]):
+        parts.pop()
+    return "_".join(parts)
 
 
 def plot_importance(importance: dict, *, top: int = 15,
@@ -499,7 +527,7 @@ def write_training_figures(model, out: str | Path, X=None, y=None, *, top: int =
     paths = write_metric_figures(model.cv_report.metrics, out, prefix="cv_",
                                  title="cross-validation")
     if X is not None and y is not None:
-        imp = feature_importance(model, X, y, n_repeats=n_repeats, seed=seed)
+        imp = feature_importance(model, X, y, n_repeats=n_repeats, seed=seed, grouped=True)
         fig = plot_importance(imp, top=top)
         _save(fig, out / "importance.png", svg=True)
         csv_path = out / "importance.csv"
@@ -732,8 +760,11 @@ class _PermutedColumns:
 
     _estimator_type = "classifier"
 
-    def __init__(self, mats, rests, classes):
+    def __init__(self, mats, rests, classes, column_group=None):
         self.mats, self.rests, self.classes_ = mats, rests, np.asarray(classes)
+        # Input column g permutes every feature column c with column_group[c] == g.
+        width = mats[0].shape[1]
+        self.column_group = np.arange(width) if column_group is None else column_group
 
     def __sklearn_tags__(self):
         from sklearn.utils import ClassifierTags, Tags, TargetTags
@@ -748,7 +779,7 @@ class _PermutedColumns:
         return {}
 
     def predict_proba(self, index) -> np.ndarray:
-        index = np.asarray(index).astype(np.int64)
+        index = np.asarray(index).astype(np.int64)[:, self.column_group]
         cols = np.arange(index.shape[1])[None, :]
         total = None
         for mat, rest in zip(self.mats, self.rests, strict=True):
