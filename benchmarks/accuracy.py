@@ -133,6 +133,34 @@ def accuracy_markdown(result: dict, *, heading: str = "#") -> str:
     return "\n".join(lines)
 
 
+def accuracy_table(rows: list[dict]) -> str:
+    """The feature-set table alone, as Markdown."""
+    lines = ["| feature set | macro-F1 | ECE | macro-F1 (calibrated) | ECE (calibrated) |",
+             "| --- | --- | --- | --- | --- |"]
+    for r in rows:
+        lines.append(f"| {r['feature_set']} | {r['macro_f1']:.3f} | {r['ece']:.3f} | "
+                     f"{r['macro_f1_calibrated']:.3f} | {r['ece_calibrated']:.3f} |")
+    return "\n".join(lines)
+
+
+def write_readme_block(readme: Path, result: dict) -> bool:
+    """Put this run's table between the accuracy markers of a README; False if it has none."""
+    start, end = "<!-- accuracy:start -->", "<!-- accuracy:end -->"
+    if not readme.exists():
+        return False
+    text = readme.read_text(encoding="utf-8")
+    if start not in text or end not in text:
+        return False
+    r = result
+    block = (f"{start}\n{accuracy_table(r['rows'])}\n\n{r['n_images']} invented images, "
+             f"{r['n_groups']} samples, {r['cv']}-fold grouped CV, classifier "
+             f"`{r['rows'][0]['classifier']}`, calibration `{r['calibration']}`; written by "
+             f"`benchmarks/accuracy.py` on {dt.date.today().isoformat()}.\n{end}")
+    head, rest = text.split(start, 1)
+    readme.write_text(head + block + rest.split(end, 1)[1], encoding="utf-8")
+    return True
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true",
@@ -149,6 +177,9 @@ def main() -> None:
     if not args.quick:
         OUT.write_text(text, encoding="utf-8")
         print(f"wrote {OUT}")
+        for readme in (ROOT / "README.md", ROOT / "benchmarks" / "README.md"):
+            if write_readme_block(readme, result):
+                print(f"wrote the accuracy block of {readme}")
 
 
 if __name__ == "__main__":

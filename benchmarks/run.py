@@ -586,12 +586,9 @@ def table_text(results: dict) -> str:
 
 
 def accuracy_table_text(results: dict) -> str:
-    lines = ["| feature set | macro-F1 | ECE | macro-F1 (calibrated) | ECE (calibrated) |",
-             "| --- | --- | --- | --- | --- |"]
-    for r in results["accuracy"]["rows"]:
-        lines.append(f"| {r['feature_set']} | {r['macro_f1']:.3f} | {r['ece']:.3f} | "
-                     f"{r['macro_f1_calibrated']:.3f} | {r['ece_calibrated']:.3f} |")
-    return "\n".join(lines)
+    from accuracy import accuracy_table
+
+    return accuracy_table(results["accuracy"]["rows"])
 
 
 def details_text(results: dict) -> str:
@@ -757,20 +754,12 @@ def _sizes_text(cfg: dict) -> str:
 
 
 def _update_readme(results: dict) -> None:
-    """Put the accuracy table of this run between the markers of benchmarks/README.md."""
-    start, end = "<!-- accuracy:start -->", "<!-- accuracy:end -->"
-    if not README.exists():
-        return
-    text = README.read_text(encoding="utf-8")
-    if start not in text or end not in text:
-        return
-    a = results["details"]["accuracy"]
-    block = (f"{start}\n{accuracy_table_text(results)}\n\n{a['n_images']} images, "
-             f"{a['n_groups']} samples, {a['cv']}-fold grouped CV, classifier "
-             f"`{results['accuracy']['rows'][0]['classifier']}`, calibration "
-             f"`{a['calibration']}`; run of {dt.date.today().isoformat()}.\n{end}")
-    head, rest = text.split(start, 1)
-    README.write_text(head + block + rest.split(end, 1)[1], encoding="utf-8")
+    """Put the accuracy table of this run between the markers of both READMEs."""
+    from accuracy import write_readme_block
+
+    summary = {**results["details"]["accuracy"], "rows": results["accuracy"]["rows"]}
+    for readme in (README, ROOT / "README.md"):
+        write_readme_block(readme, summary)
 
 
 def _passes(value, op: str, goal) -> bool:
