@@ -12,6 +12,7 @@ from __future__ import annotations
 import csv
 import io
 import os
+import time
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -28,6 +29,13 @@ CAUTION = (
     "whenever the process, the instrument or the magnification changes. These scores support, "
     "and do not replace, the lab's own quality procedures."
 )
+
+# Images are scored in small chunks: one predict call per image costs the whole forest's
+# overhead each time (about 0.2 s for 5 calibrated forests of 300 trees), a call for 16 images
+# barely more. A chunk is written as soon as it is scored, and at the latest a few seconds
+# after its first image finished, so a killed run loses only images not yet written.
+_CHUNK_IMAGES = 16
+_CHUNK_SECONDS = 5.0
 
 #: Per-image measures written beside the probabilities (persistence values in spacing units).
 MEASURE_COLUMNS = (
@@ -133,17 +141,18 @@ def score_images(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
                 description="scoring",
             )
-            for result in results:
-                row = _score_row(model, classes, result)
-                fh.write(_format_row(row, columns))
+            for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
+                rows = _score_rows(model, classes, chunk)
+                fh.write("".join(_format_row(row, columns) for row in rows))
                 fh.flush()
                 os.fsync(fh.fileno())
-                if row["status"] == "ok":
-                    summary.scored += 1
-                    summary.per_class[row["predicted"]] += 1
-                    summary.unfamiliar += int(row["unfamiliar"] == "yes")
-                else:
-                    summary.failed += 1
+                for row in rows:
+                    if row["status"] == "ok":
+                        summary.scored += 1
+                        summary.per_class[row["predicted"]] += 1
+                        summary.unfamiliar += int(row["unfamiliar"] == "yes")
+                    else:
+                        summary.failed += 1
     return summary
 
 
@@ -171,22 +180,51 @@ def summary_text(summary: ScoreSummary) -> str:
 # private helpers
 
 
-def _score_row(model, classes: list[str], result: TextureResult) -> dict[str, object]:
-    row: dict[str, object] = {"image": str(result.path), "sha256": result.sha256 or ""}
-    if not result.ok:
-        row.update(status="error", message=result.error or "unknown error")
-        return row
-    texture = result.texture
+def _chunks(results, size: int, seconds: float):
+    """Group an iterator into lists of at most ``size``, or what ``seconds`` collected."""
+    chunk: list = []
+    started = 0.0
+    for item in results:
+        if not chunk:
+            started = time.monotonic()
+        chunk.append(item)
+        if len(chunk) >= size or time.monotonic() - started >= seconds:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def _score_rows(model, classes: list[str], results: list[TextureResult]) -> list[dict]:
+    """One row per result, in order; the measured images are predicted in one call."""
+    rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
+    ok = [i for i, r in enumerate(results) if r.ok]
+    for i, r in enumerate(results):
+        if not r.ok:
+            rows[i].update(status="error", message=r.error or "unknown error")
+    if not ok:
+        return rows
+    textures = [results[i].texture for i in ok]
     try:
-        proba = np.asarray(model.predict_proba([texture]), dtype=float)[0]
-        unfamiliarity = float(np.asarray(model.unfamiliarity([texture]))[0])
-        reasons = (model.unfamiliar_reasons([texture])[0]
-                   if hasattr(model, "unfamiliar_reasons") else [])
-    except Exception as exc:  # keep the batch going; the row says what happened
-        row.update(status="error", message=f"{result.path}: scoring failed: {exc}")
-        return row
+        proba = np.asarray(model.predict_proba(textures), dtype=float)
+        unfamiliarity = np.asarray(model.unfamiliarity(textures), dtype=float)
+        reasons = (model.unfamiliar_reasons(textures)
+                   if hasattr(model, "unfamiliar_reasons") else [[] for _ in ok])
+    except Exception as exc:  # keep the batch going; the rows say what happened
+        for i in ok:
+            rows[i].update(status="error",
+                           message=f"{results[i].path}: scoring failed: {exc}")
+        return rows
+    for k, i in enumerate(ok):
+        rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
+    return rows
+
+
+def _ok_row(classes, result: TextureResult, proba, unfamiliarity: float, reasons) -> dict:
+    texture = result.texture
     best = int(np.argmax(proba))
-    row.update(status="ok", predicted=classes[best], confidence=proba[best])
+    row: dict[str, object] = {"status": "ok", "predicted": classes[best],
+                              "confidence": proba[best]}
     row.update({f"p_{c}": p for c, p in zip(classes, proba, strict=True)})
     row["unfamiliar"] = "yes" if unfamiliarity > 1.0 else "no"
     measures = {**barcode_summary(texture.diagrams), **texture.order}
