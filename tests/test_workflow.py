@@ -37,8 +37,16 @@ def test_demo_quality_held_out_by_group(demo):
     assert card["cv"]["ece"] <= 0.05
     # The production batch is other samples made with another seed: held out twice over.
     assert demo.validation.metrics["macro_f1"] >= 0.95
-    rows = read_scores(demo.scores)
-    assert len(rows) == demo.score_summary.scored and all(r["status"] == "ok" for r in rows)
+    rows = {Path(r["image"]).name: r for r in read_scores(demo.scores)}
+    # The batch also holds a photograph of something else and a truncated file.
+    assert rows.pop("zz_not_a_membrane.png")["unfamiliar"] == "yes"
+    damaged = rows.pop("zz_damaged_transfer.png")
+    assert damaged["status"] == "error" and "zz_damaged_transfer.png" in damaged["message"]
+    assert all(r["status"] == "ok" for r in rows.values())
+    # The novelty threshold is set for about 1 % of in-population images (model.py); allow 2.
+    flagged = sum(r["unfamiliar"] == "yes" for r in rows.values())
+    assert flagged <= 2 and demo.score_summary.unfamiliar == 1 + flagged
+    assert demo.score_summary.failed == 1
     assert (demo.scores.parent / "report.html").is_file()
 
 

@@ -648,8 +648,8 @@ class TrainedModel:
         for m, r in zip(mahalanobis, ranges, strict=True):
             words = list(r)
             if m > 1.0:
-                words.append(f"features far from every training image (distance {m:.2f} of "
-                             "the allowed)")
+                words.append(f"features far from every training image ({m:.3g} times the "
+                             "allowed distance)")
             out.append(words)
         return out
 

@@ -258,7 +258,8 @@ def run_demo(
     """The whole job on invented anodic-alumina micrographs.
 
     Makes a labelled training set and a separate "production" batch (other simulated membrane
-    samples, another seed), trains a model with grouped cross-validation, validates it on the
+    samples, another seed, plus a photograph of something else and a truncated file, as a real
+    line delivers them), trains a model with grouped cross-validation, validates it on the
     production batch's labels, and scores that batch into ``scores.csv`` with ``report.html``
     beside it.
     """
@@ -277,6 +278,8 @@ def run_demo(
         workdir / "production", per_class=production_per_class, size=size, seed=seed + 1,
         progress=progress,
     )
+    # What a production line also delivers: a frame of something else, and a damaged file.
+    _add_odd_images(prod_sheet.parent / "images")
     log("2/4 training (grouped cross-validation, then calibration)")
     training = train_from_labels(
         train_sheet, workdir / "model", seed=seed, jobs=jobs, cache_dir=cache, progress=progress
@@ -296,3 +299,14 @@ def run_demo(
 
     write_batch_report(scores, model=training.model, progress=progress)
     return DemoRun(workdir, training, validation, scores, summary)
+
+
+def _add_odd_images(folder: Path) -> None:
+    """A photograph that is no membrane (scikit-image's camera) and a file cut off in transfer."""
+    import skimage.data
+    import skimage.io
+
+    skimage.io.imsave(folder / "zz_not_a_membrane.png", skimage.data.camera(),
+                      check_contrast=False)
+    whole = next(iter(sorted(folder.glob("*.png")))).read_bytes()
+    (folder / "zz_damaged_transfer.png").write_bytes(whole[: len(whole) // 3])
