@@ -61,6 +61,7 @@ class ScoreSummary:
     failed: int = 0
     skipped: int = 0
     unfamiliar: int = 0
+    #: Predicted classes of the scored images that are not unfamiliar.
     per_class: Counter = field(default_factory=Counter)
 
     @property
@@ -149,8 +150,10 @@ def score_images(
                 for row in rows:
                     if row["status"] == "ok":
                         summary.scored += 1
-                        summary.per_class[row["predicted"]] += 1
-                        summary.unfamiliar += int(row["unfamiliar"] == "yes")
+                        if row["unfamiliar"] == "yes":
+                            summary.unfamiliar += 1
+                        else:
+                            summary.per_class[row["predicted"]] += 1
                     else:
                         summary.failed += 1
     return summary
@@ -169,7 +172,8 @@ def summary_text(summary: ScoreSummary) -> str:
     lines = [f"scored {summary.scored}, failed {summary.failed}, already done {summary.skipped}"]
     for cls, n in sorted(summary.per_class.items()):
         lines.append(f"  predicted {cls:<16} {n}")
-    lines.append(f"  unfamiliar (outside the training set's range): {summary.unfamiliar}")
+    lines.append(f"  unfamiliar: {summary.unfamiliar} (unlike the training images, so their "
+                 "class is not counted above; check them by eye)")
     lines.append(f"results: {summary.out}")
     lines.append("")
     lines.append("Caution: " + CAUTION)
