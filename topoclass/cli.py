@@ -255,8 +255,8 @@ def _cv_summary(model) -> str:
     return (f"cross-validation ({r['n_splits']}-fold {r['splitter']}): "
             f"accuracy {r['accuracy']:.3f}, "
             f"macro-F1 {r['macro_f1']:.3f}, log-loss {r['log_loss']:.3f}, "
-            f"Brier {r['brier']:.3f}, ECE {r['ece']:.3f}; calibration {model.calibration} "
-            f"({model.calibration_reason})")
+            f"Brier {r['brier']:.3f}, ECE {r['ece']:.3f}; calibration: "
+            f"{model.calibration_reason}")
 
 
 def _comparison_table(rows: list[dict]) -> str:
