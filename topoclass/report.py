@@ -633,7 +633,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         if bar is not None:
             bar.__exit__(None, None, None)
 
-    counts = Counter(r.get("predicted", "") for r in ok)
+    # As in the scoring summary: an unfamiliar image's class is not counted with the rest.
+    counts = Counter(r.get("predicted", "") for r in ok if r.get("unfamiliar") != "yes")
     page = _report_page(
         scores_csv=scores_csv, rows=rows, classes=classes, measures=measures, counts=counts,
         failed=failed, unfamiliar=unfamiliar, thumbs=thumbs, links=links, details=details,
@@ -920,7 +921,8 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
     parts.append(
         "<h2>Summary</h2><table class='small' id='summary'><tr><th>predicted class</th>"
         f"<th>images</th></tr>{summary}"
-        f"<tr><td>unfamiliar (check by eye)</td><td class='n'>{len(unfamiliar)}</td></tr>"
+        f"<tr><td>unfamiliar (check by eye; not counted above)</td>"
+        f"<td class='n'>{len(unfamiliar)}</td></tr>"
         f"<tr><td>failed</td><td class='n'>{len(failed)}</td></tr>"
         f"<tr><th>scored</th><th class='n'>{n_ok}</th></tr></table>"
     )
