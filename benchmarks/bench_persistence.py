@@ -30,6 +30,8 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
+from _machine import cpu_model, peak_rss_mb  # noqa: E402
+
 from topoclass.order import order_measures  # noqa: E402
 from topoclass.persistence import pattern_persistence, rips_persistence  # noqa: E402
 from topoclass.sites import SitePattern  # noqa: E402
@@ -155,7 +157,7 @@ def _child(n_sites: int, seed: int) -> None:
     # ru_maxrss survives fork + exec on Linux (the child starts with its parent's peak), so the
     # kernel's own high-water mark of this address space (VmHWM) is reported beside it.
     pattern = jittered_pattern(n_sites, seed=seed)
-    before = _vm_hwm_mb()
+    before = peak_rss_mb()
     c0 = time.process_time()
     diagrams = pattern_persistence(pattern, max_scale=MAX_SCALE)
     order_measures(pattern)
@@ -163,35 +165,15 @@ def _child(n_sites: int, seed: int) -> None:
     print(json.dumps({
         "n_sites": pattern.n_sites,
         "rss_before_mb": before,
-        "peak_rss_mb": _vm_hwm_mb(),
+        "peak_rss_mb": peak_rss_mb(),
         "ru_maxrss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,  # kB
         "cpu_s": cpu,
         "h1_bars": int(diagrams.h1.shape[0]),
     }))
 
 
-def _vm_hwm_mb() -> float:
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return float(line.split()[1]) / 1024.0
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-
-
 def _sorted(bars: np.ndarray) -> np.ndarray:
     return bars[np.lexsort((bars[:, 1], bars[:, 0]))]
-
-
-def _cpu_name() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or "unknown"
 
 
 def main() -> None:
@@ -209,7 +191,7 @@ def main() -> None:
         "# Persistence and order measures: benchmark results",
         "",
         f"- date: {datetime.date.today().isoformat()}",
-        f"- CPU: {_cpu_name()} ({_n_cpus()} logical CPUs); load average at the end: "
+        f"- CPU: {cpu_model()} ({_n_cpus()} logical CPUs); load average at the end: "
         f"{' '.join(load)}",
         f"- Python {platform.python_version()}, numpy {np.__version__}, scipy {scipy.__version__}, "
         f"ripser {getattr(ripser, '__version__', '?')}",

@@ -17,12 +17,12 @@ import cProfile
 import datetime as dt
 import io
 import os
-import platform
 import pstats
 import time
 from pathlib import Path
 
 import numpy as np
+from _machine import cpu_model
 from scipy.spatial import cKDTree
 from threadpoolctl import threadpool_limits
 
@@ -30,16 +30,6 @@ from topoclass.sites import estimate_spacing, find_sites
 from topoclass.synth import hexagonal_lattice, render_micrograph
 
 RESULTS = Path(__file__).with_name("RESULTS_sites.md")
-
-
-def cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or platform.machine()
 
 
 def speed(profile: bool = False, repeats: int = 3) -> tuple[float, int, float, str]:

@@ -34,6 +34,7 @@ for _p in (str(ROOT), str(HERE)):
     if _p not in sys.path:
         sys.path.insert(0, _p)
 
+from _machine import cpu_model, peak_rss_mb  # noqa: E402
 from threadpoolctl import threadpool_info, threadpool_limits  # noqa: E402
 
 from topoclass.order import order_measures  # noqa: E402
@@ -282,10 +283,10 @@ def measure_peak_rss(image: np.ndarray) -> dict:
 
 def _rss_child(path: str) -> None:
     threadpool_limits(1)
-    after_imports = _vm_hwm_mb()
+    after_imports = peak_rss_mb()
     image = np.load(path)
     union = fitted_union(image[:600, :600].copy())  # fit on a corner: small, not the big image
-    before = _vm_hwm_mb()
+    before = peak_rss_mb()
     row, texture = chain(image, union)
     print(json.dumps({
         "n_sites": row["n_sites"],
@@ -293,7 +294,7 @@ def _rss_child(path: str) -> None:
         "image_mb": image.nbytes / 2**20,
         "after_imports_mb": after_imports,
         "before_chain_mb": before,
-        "peak_rss_mb": _vm_hwm_mb(),
+        "peak_rss_mb": peak_rss_mb(),
         "ru_maxrss_self_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
         "cpu_s": row["total_s"],
         "h1_bars": int(texture.diagrams.h1.shape[0]),
@@ -542,7 +543,7 @@ def machine_info() -> dict:
     return {
         "cores": os.cpu_count(),
         "usable_cores": len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else None,
-        "cpu": _cpu_model(),
+        "cpu": cpu_model(),
         "python": platform.python_version(),
         "versions": {"numpy": np.__version__, "scipy": scipy.__version__,
                      "scikit-learn": sklearn.__version__, "scikit-image": skimage.__version__,
@@ -784,26 +785,6 @@ def _max_rel(a: np.ndarray, b: np.ndarray) -> float:
     if a.size == 0:
         return 0.0
     return float(np.max(np.abs(a - b) / np.maximum(np.abs(a), 1e-300)))
-
-
-def _vm_hwm_mb() -> float:
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return float(line.split()[1]) / 1024.0
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
-
-
-def _cpu_model() -> str:
-    try:
-        for line in Path("/proc/cpuinfo").read_text().splitlines():
-            if line.startswith("model name"):
-                return line.split(":", 1)[1].strip()
-    except OSError:
-        pass
-    return platform.processor() or platform.machine()
 
 
 def _json_default(obj):
