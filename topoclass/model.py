@@ -1022,7 +1022,12 @@ def _fit_calibrated(pipeline, X, y, groups, method, cv, seed) -> CalibratedClass
         raise TopoclassError(f"a class has fewer than 2 {unit} in a training part, too few to "
                              f"calibrate; label more {unit} per class or use fewer folds")
     splits = _fold_splits(y, groups, n_splits, seed)
-    model = CalibratedClassifierCV(clone(pipeline), method=method, cv=splits, ensemble=True)
+    # ensemble=False: the calibrator learns from out-of-fold predictions on the grouped folds,
+    # then one pipeline fitted on all images is shipped. An ensemble of one pipeline per fold
+    # would run the feature step and the classifier once per fold for every image scored,
+    # five times the cost on a production line, for calibration that is no better on small
+    # sets.
+    model = CalibratedClassifierCV(clone(pipeline), method=method, cv=splits, ensemble=False)
     return model.fit(X, y)
 
 
