@@ -190,7 +190,7 @@ def iter_textures(
     else:
         from joblib import Parallel, delayed
 
-        parallel = Parallel(n_jobs=jobs, return_as="generator", batch_size=1)
+        parallel = Parallel(n_jobs=jobs, return_as="generator", batch_size="auto")
         results = parallel(delayed(_limited)(work, p) for p in paths)
     if not progress:
         yield from results

@@ -641,17 +641,29 @@ class TrainedModel:
 
     def unfamiliar_reasons(self, X) -> list[list[str]]:
         """Per image, why it is unfamiliar, in words (empty for familiar images)."""
+        return self.assess(X)[2]
+
+    def assess(self, X) -> tuple[np.ndarray, np.ndarray, list[list[str]]]:
+        """Probabilities, unfamiliarity and its reasons in one pass over the features.
+
+        The same as :meth:`predict_proba`, :meth:`unfamiliarity` and
+        :meth:`unfamiliar_reasons`, computing each novelty check once (scoring calls this).
+        """
+        proba = self.predict_proba(X)
         mahalanobis = self.novelty.score(X)
-        ranges = (self.range_check.reasons(X) if self.range_check is not None
-                  else [[] for _ in range(len(mahalanobis))])
-        out = []
+        score = mahalanobis
+        ranges: list[list[str]] = [[] for _ in range(len(mahalanobis))]
+        if self.range_check is not None:
+            score = np.maximum(score, self.range_check.score(X))
+            ranges = self.range_check.reasons(X)
+        reasons = []
         for m, r in zip(mahalanobis, ranges, strict=True):
             words = list(r)
             if m > 1.0:
                 words.append(f"features far from every training image ({m:.3g} times the "
                              "allowed distance)")
-            out.append(words)
-        return out
+            reasons.append(words)
+        return proba, score, reasons
 
     def is_unfamiliar(self, X) -> np.ndarray:
         return self.unfamiliarity(X) > 1.0

@@ -210,10 +210,9 @@ def _score_rows(model, classes: list[str], results: list[TextureResult]) -> list
         return rows
     textures = [results[i].texture for i in ok]
     try:
-        proba = np.asarray(model.predict_proba(textures), dtype=float)
-        unfamiliarity = np.asarray(model.unfamiliarity(textures), dtype=float)
-        reasons = (model.unfamiliar_reasons(textures)
-                   if hasattr(model, "unfamiliar_reasons") else [[] for _ in ok])
+        proba, unfamiliarity, reasons = model.assess(textures)
+        proba = np.asarray(proba, dtype=float)
+        unfamiliarity = np.asarray(unfamiliarity, dtype=float)
     except Exception as exc:  # keep the batch going; the rows say what happened
         for i in ok:
             rows[i].update(status="error",
