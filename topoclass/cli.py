@@ -230,6 +230,7 @@ def _human_summary(summary: dict) -> str:
     lines.append(f"  sites found      {summary['n_sites']} ({interior} interior)")
     lines.append(f"  spacing          {spacing}")
     lines.append(f"  polarity         {summary['polarity']}")
+    lines.append("  (persistence values below are in units of the spacing)")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
     for key, value in summary.items():
         if key in skip or value is None:
