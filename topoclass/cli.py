@@ -219,6 +219,9 @@ def demo(
     typer.echo(f"CV report:  {run.training.directory / 'cv_report.md'}")
     typer.echo(f"validation: {run.validation.report}")
     typer.echo(f"scores:     {run.scores}")
+    report = run.scores.parent / "report.html"
+    if report.exists():
+        typer.echo(f"report:     {report}")
 
 
 def _human_summary(summary: dict) -> str:
