@@ -25,6 +25,22 @@ app = typer.Typer(
 )
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from topoclass import __version__
+
+        typer.echo(f"topoclass {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(
+    version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
+                                 help="Print the version and exit."),
+) -> None:
+    """Sort micrographs of nearly hexagonal patterns by the kind and amount of disorder."""
+
+
 def main() -> None:
     """Entry point: user errors become one line on stderr and exit code 2, never a traceback."""
     try:
