@@ -31,7 +31,7 @@ from topoclass.sites import SitePattern, find_sites
 from topoclass.vectorize import Texture
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 1
+_CACHE_LAYOUT = 2
 
 
 @dataclass(frozen=True)
@@ -184,7 +184,7 @@ def iter_textures(
     if cache_dir is None:
         cache_dir = default_cache_dir()
     cache = _TextureCache(Path(cache_dir), settings) if cache_dir != "" else None
-    work = _one_image_worker(settings, cache)
+    work = _Worker(settings, cache)
     if jobs == 1 or len(paths) <= 1:
         results: Iterator[TextureResult] = (work(p) for p in paths)
     else:
@@ -203,10 +203,6 @@ def iter_textures(
 
 # --------------------------------------------------------------------------------------------
 # private helpers
-
-
-def _one_image_worker(settings: FeatureSettings, cache: _TextureCache | None) -> Callable:
-    return _Worker(settings, cache)
 
 
 class _Worker:
@@ -282,10 +278,7 @@ class _TextureCache:
 
 
 def _texture_to_arrays(texture: Texture) -> dict[str, np.ndarray]:
-    arrays: dict[str, np.ndarray] = {}
-    for f in dataclasses.fields(Diagrams):
-        value = getattr(texture.diagrams, f.name)
-        arrays[f"d_{f.name}"] = np.asarray(np.nan if value is None else value)
+    arrays = {f"d_{k}": v for k, v in texture.diagrams.to_dict().items()}
     keys = list(texture.order)
     arrays["order_keys"] = np.array(keys, dtype=str)
     arrays["order_values"] = np.array([texture.order[k] for k in keys], dtype=float)
@@ -293,13 +286,6 @@ def _texture_to_arrays(texture: Texture) -> dict[str, np.ndarray]:
 
 
 def _texture_from_arrays(data, source: str) -> Texture:
-    kwargs = {}
-    for f in dataclasses.fields(Diagrams):
-        value = data[f"d_{f.name}"]
-        if value.ndim == 0:
-            value = value.item()
-            if isinstance(value, float) and np.isnan(value) and f.name == "pixel_size_nm":
-                value = None
-        kwargs[f.name] = value
+    diagrams = Diagrams.from_dict({k[2:]: data[k] for k in data.files if k.startswith("d_")})
     order = dict(zip(data["order_keys"].tolist(), data["order_values"].tolist(), strict=True))
-    return Texture(diagrams=Diagrams(**kwargs), order=order, source=source)
+    return Texture(diagrams=diagrams, order=order, source=source)
