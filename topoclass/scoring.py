@@ -64,10 +64,6 @@ class ScoreSummary:
     #: Predicted classes of the scored images that are not unfamiliar.
     per_class: Counter = field(default_factory=Counter)
 
-    @property
-    def total(self) -> int:
-        return self.scored + self.failed + self.skipped
-
 
 def score_columns(classes: Sequence[str]) -> list[str]:
     """The header of ``scores.csv`` for a model with these classes."""
@@ -235,7 +231,6 @@ def _ok_row(classes, result: TextureResult, proba, unfamiliarity: float, reasons
     for key in MEASURE_COLUMNS:
         if key in measures:
             row[key] = measures[key]
-    row["n_sites"] = measures.get("n_sites", "")
     messages = list(result.notes)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
