@@ -11,10 +11,10 @@ may be border sites, which is why the border band exists.
 from __future__ import annotations
 
 import numpy as np
-from scipy.spatial import Delaunay, QhullError, cKDTree
+from scipy.spatial import cKDTree
 
 from topoclass.errors import PatternError
-from topoclass.sites import SitePattern
+from topoclass.sites import SitePattern, Triangulation, triangulate
 
 #: The keys every result of :func:`order_measures` has, in this order.
 ORDER_MEASURE_KEYS = (
@@ -74,7 +74,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
     if not np.any(interior):
         raise PatternError(f"{name}: no interior site (all {pattern.n_sites} sites are at the "
                            "border); use a larger field of view or a higher magnification")
-    indptr, indices = delaunay_neighbours(xy, source=pattern.source)
+    indptr, indices = _neighbours(pattern.delaunay, xy.shape[0], name)
     coord = np.diff(indptr)
     psi = psi6(xy, (indptr, indices))
     nn = nearest_neighbour_distances(xy, focal=interior)
@@ -90,7 +90,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
         "n5_fraction": float(np.mean(c_in == 5)),
         "n7_fraction": float(np.mean(c_in == 7)),
         "nn_cv": float(nn.std() / nn_mean) if nn_mean > 0 else 0.0,
-        "clark_evans_r": clark_evans(xy, area, focal=interior),
+        "clark_evans_r": _clark_evans_index(nn, area, pattern.n_sites),
         "mean_coordination": float(c_in.mean()),
         "nn_mean_per_spacing": nn_mean / pattern.spacing,
         "density_per_spacing2": pattern.n_sites / area * pattern.spacing**2,
@@ -112,17 +112,17 @@ def delaunay_neighbours(
         With fewer than 3 sites or all sites on one line (no triangulation).
     """
     xy = _as_xy(xy, source)
-    name = source or "the site pattern"
-    if xy.shape[0] < 3:
-        raise PatternError(f"{name}: {xy.shape[0]} sites are too few for order measures "
+    return _neighbours(triangulate(xy), xy.shape[0], source or "the site pattern")
+
+
+def _neighbours(tri: Triangulation | None, n: int, name: str) -> tuple[np.ndarray, np.ndarray]:
+    if tri is not None:
+        return tri.indptr, tri.indices
+    if n < 3:
+        raise PatternError(f"{name}: {n} sites are too few for order measures "
                            "(at least 3 needed); check the site finding of this image")
-    try:
-        tri = Delaunay(xy)
-    except QhullError:
-        raise PatternError(f"{name}: the sites lie on one line, so they have no triangulation; "
-                           "check the site finding of this image") from None
-    indptr, indices = tri.vertex_neighbor_vertices
-    return indptr.astype(np.int64), indices.astype(np.int64)
+    raise PatternError(f"{name}: the sites lie on one line, so they have no triangulation; "
+                       "check the site finding of this image")
 
 
 def coordination(xy: np.ndarray, neighbours: tuple | None = None) -> np.ndarray:
@@ -219,6 +219,12 @@ def clark_evans(
     nn = nearest_neighbour_distances(xy, focal=focal)
     if nn.size == 0:
         raise ValueError("the Clark-Evans index needs at least two sites and one focal site")
+    return _clark_evans_index(nn, area, n, perimeter)
+
+
+def _clark_evans_index(
+    nn: np.ndarray, area: float, n: int, perimeter: float | None = None
+) -> float:
     expected = 0.5 * np.sqrt(area / n)
     if perimeter is not None:
         expected += (0.0514 + 0.041 / np.sqrt(n)) * perimeter / n

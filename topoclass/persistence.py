@@ -29,10 +29,10 @@ import numpy as np
 from ripser import ripser
 from scipy import sparse
 from scipy.sparse.csgraph import minimum_spanning_tree
-from scipy.spatial import Delaunay, QhullError, cKDTree
+from scipy.spatial import cKDTree
 
 from topoclass.errors import PatternError
-from topoclass.sites import SitePattern
+from topoclass.sites import SitePattern, Triangulation, triangulate
 
 #: Default radius limit in units of the site spacing; see :func:`pattern_persistence`.
 DEFAULT_MAX_SCALE = 2.5
@@ -216,6 +216,7 @@ def pattern_persistence(
         border=pattern.border if exclude_border else None,
         guard=border_guard,
         source=pattern.source,
+        delaunay=pattern.delaunay,
     )
     return Diagrams(
         h0=raw["h0"],
@@ -240,6 +241,7 @@ def rips_persistence(
     border: np.ndarray | None = None,
     guard: float = 0.0,
     source: str | None = None,
+    delaunay: Triangulation | None = None,
 ) -> dict:
     """Radius-limited Vietoris–Rips persistence (H0, H1) of a planar point cloud.
 
@@ -259,6 +261,9 @@ def rips_persistence(
         Depth between border points and inner points, same units as ``xy``.
     source : str, optional
         File name used in error messages.
+    delaunay : Triangulation, optional
+        Delaunay neighbours of ``xy`` when the caller has them (:attr:`SitePattern.delaunay`);
+        computed here when needed otherwise.
 
     Returns
     -------
@@ -297,9 +302,10 @@ def rips_persistence(
 
     tree = cKDTree(pts) if n else None
     pairs, dist = _radius_graph(pts, float(max_scale), tree)
-    h0, h0_edges = _h0_from_emst(pts, pairs, dist)
+    delaunay_edges = _DelaunayEdges(pts, inverse, delaunay)
+    h0, h0_edges = _h0_from_emst(pts, pairs, dist, delaunay_edges)
     h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), pairs, dist)
-    h1_death = _death_edges(pts, h1[:, 1], h1_truncated, pairs, dist, tree)
+    h1_death = _death_edges(pts, h1[:, 1], h1_truncated, pairs, dist, delaunay_edges)
 
     inner = np.ones(n, dtype=bool)
     if border is not None:
@@ -343,17 +349,16 @@ def _unique_points(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def _radius_graph(
     pts: np.ndarray, max_scale: float, tree: cKDTree | None
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Site pairs ``i < j`` closer than ``max_scale``, sorted by ``(i, j)``, and their lengths."""
+    """Site pairs ``i < j`` closer than ``max_scale`` (in no set order) and their lengths."""
     if pts.shape[0] < 2:
         return np.zeros((0, 2), dtype=np.int64), np.zeros(0)
+    # No sorting here: ripser sorts a COO input by (row, col) itself (it must, and does).
     pairs = tree.query_pairs(max_scale, output_type="ndarray").astype(np.int64)
-    # ripser reads the upper triangle of a COO matrix sorted by (row, col).
-    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
     return pairs, np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T)
 
 
 def _h0_from_emst(
-    pts: np.ndarray, pairs: np.ndarray, dist: np.ndarray
+    pts: np.ndarray, pairs: np.ndarray, dist: np.ndarray, delaunay_edges: _DelaunayEdges
 ) -> tuple[np.ndarray, np.ndarray]:
     """Finite H0 bars and their death edges from the exact Euclidean MST.
 
@@ -367,7 +372,7 @@ def _h0_from_emst(
     graph = sparse.coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(n, n)).tocsr()
     mst = minimum_spanning_tree(graph).tocoo()
     if mst.nnz != n - 1:
-        rows, cols = _delaunay_edges(pts)
+        rows, cols = delaunay_edges()
         w = np.hypot(*(pts[rows] - pts[cols]).T)
         graph = sparse.coo_matrix((w, (rows, cols)), shape=(n, n)).tocsr()
         mst = minimum_spanning_tree(graph).tocoo()
@@ -380,35 +385,52 @@ def _h0_from_emst(
     return bars, edges
 
 
-def _delaunay_edges(pts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Edges ``i < j`` of the Delaunay graph (or of the chain, for collinear points)."""
+class _DelaunayEdges:
+    """Edges ``i < j`` of the Delaunay graph of the distinct points, built on first call.
+
+    From the caller's triangulation of the raw points when given (indices mapped through
+    ``inverse``, so duplicates fold into their first copy), else triangulated here. Points qhull
+    left out (closer than its precision to a vertex) are joined to that vertex, their MST
+    neighbour; collinear points (no triangulation) get the chain along their line.
+    """
+
+    def __init__(self, pts: np.ndarray, inverse: np.ndarray, tri: Triangulation | None):
+        self._pts, self._inverse, self._tri = pts, inverse, tri
+        self._edges: tuple[np.ndarray, np.ndarray] | None = None
+
+    def __call__(self) -> tuple[np.ndarray, np.ndarray]:
+        if self._edges is None:
+            self._edges = self._build()
+        return self._edges
+
+    def _build(self) -> tuple[np.ndarray, np.ndarray]:
+        pts, n = self._pts, self._pts.shape[0]
+        tri, inverse = self._tri, self._inverse
+        if tri is None:
+            tri = triangulate(pts)
+            inverse = np.arange(n)
+        if tri is None:
+            return _collinear_chain(pts)
+        rows = np.repeat(np.arange(tri.indptr.size - 1), np.diff(tri.indptr))
+        rows = np.concatenate([inverse[rows], inverse[tri.coplanar[:, 0]]])
+        cols = np.concatenate([inverse[tri.indices], inverse[tri.coplanar[:, 1]]])
+        lo, hi = np.minimum(rows, cols), np.maximum(rows, cols)
+        # Each Delaunay edge is listed from both ends; keep one copy (duplicates would be summed).
+        key = np.unique(lo[lo < hi] * n + hi[lo < hi])
+        return key // n, key % n
+
+
+def _collinear_chain(pts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Fewer than three points or all on one line: the EMST is the chain along the line."""
     n = pts.shape[0]
-    try:
-        if n < 3:
-            raise QhullError("fewer than 3 points")
-        tri = Delaunay(pts)
-    except QhullError:
-        # Fewer than three points or all on one line: the EMST is the chain along the line.
-        centred = pts - pts.mean(axis=0)
-        _, sv, vt = np.linalg.svd(centred, full_matrices=False)
-        if n >= 3 and sv[-1] > 1e-9 * max(sv[0], 1e-300):
-            raise
-        order = np.argsort(centred @ vt[0], kind="stable")
-        rows, cols = order[:-1], order[1:]
-    else:
-        indptr, indices = tri.vertex_neighbor_vertices
-        rows = np.repeat(np.arange(n), np.diff(indptr))
-        cols = indices
-        if tri.coplanar.size:
-            # qhull leaves out points it cannot tell from a vertex (closer than its precision);
-            # the nearest vertex is their MST neighbour.
-            rows = np.concatenate([rows, tri.coplanar[:, 0]])
-            cols = np.concatenate([cols, tri.coplanar[:, 2]])
-    lo = np.minimum(rows, cols).astype(np.int64)
-    hi = np.maximum(rows, cols).astype(np.int64)
-    # Each Delaunay edge is listed from both ends; keep one copy (duplicates would be summed).
-    key = np.unique(lo[lo < hi] * n + hi[lo < hi])
-    return key // n, key % n
+    centred = pts - pts.mean(axis=0)
+    _, sv, vt = np.linalg.svd(centred, full_matrices=False)
+    if n >= 3 and sv[-1] > 1e-9 * max(sv[0], 1e-300):
+        raise PatternError("qhull could not triangulate the sites although they are not on one "
+                           "line; check the site coordinates")
+    order = np.argsort(centred @ vt[0], kind="stable")
+    lo, hi = np.minimum(order[:-1], order[1:]), np.maximum(order[:-1], order[1:])
+    return lo.astype(np.int64), hi.astype(np.int64)
 
 
 def _inner_sites(pts: np.ndarray, border: np.ndarray, guard: float) -> np.ndarray:
@@ -475,14 +497,18 @@ def _death_edges(
     truncated: np.ndarray,
     pairs: np.ndarray,
     dist: np.ndarray,
-    tree: cKDTree | None,
+    delaunay_edges: _DelaunayEdges,
 ) -> np.ndarray:
     """For each finite H1 bar, the edge whose length is its death value.
 
     In a Rips filtration a triangle enters with its longest edge, so the death value of a class
-    is the length of that edge, exactly as ripser stores it (float32). Measured sites have no
-    two equal distances; equal lengths (perfect lattices) are shared out among the bars of the
-    same death value, Delaunay edges and edges deep inside the cloud first.
+    is the length of that edge, exactly as ripser stores it (float32). Where several edges have
+    that float32 length (perfect lattices; or lengths that round alike, which among ~10^5 edges
+    happens a few hundred times) they are shared out among the bars of that death value,
+    Delaunay edges and edges deep inside the cloud first: a loop closes across a Delaunay edge
+    (the hexagon around a vacancy is triangulated by its diagonals, while an ordinary
+    second-neighbour pair is not a Delaunay edge), and deep inside rather than in the notches
+    of the outline.
     """
     out = np.full((deaths.shape[0], 2), -1, dtype=np.int64)
     finite = np.flatnonzero(~truncated)
@@ -492,32 +518,30 @@ def _death_edges(
     order = np.argsort(length, kind="stable")
     sorted_len = length[order]
     values = deaths[finite].astype(np.float32)
-    lo = np.searchsorted(sorted_len, values, side="left")
-    hi = np.searchsorted(sorted_len, values, side="right")
-    uniq, first, counts = np.unique(values, return_index=True, return_counts=True)
-    # The common case, vectorised: one bar of that death value and one edge of that length.
-    single = first[(counts == 1) & ((hi - lo)[first] == 1)]
-    out[finite[single]] = pairs[order[lo[single]]]
-    delaunay_keys = None
-    lo_corner, hi_corner = pts.min(axis=0), pts.max(axis=0)
-    n = pts.shape[0]
-    for value in uniq[(counts > 1) | ((hi - lo)[first] > 1)]:
-        bars = finite[values == value]
-        candidates = order[lo[values == value][0] : hi[values == value][0]]
-        if candidates.size > 1:
-            # Ties (perfect lattices only): a loop closes across a Delaunay edge (the hexagon
-            # around a vacancy is triangulated by its diagonals, while an ordinary
-            # second-neighbour pair is not a Delaunay edge), and deep inside the cloud rather
-            # than in the notches of its outline.
-            if delaunay_keys is None:
-                rows, cols = _delaunay_edges(pts)
-                delaunay_keys = np.sort(rows * n + cols)
-            key = pairs[candidates, 0] * n + pairs[candidates, 1]
-            pos = np.minimum(np.searchsorted(delaunay_keys, key), delaunay_keys.size - 1)
-            is_delaunay = delaunay_keys[pos] == key
-            mids = 0.5 * (pts[pairs[candidates, 0]] + pts[pairs[candidates, 1]])
-            depth = np.minimum(mids - lo_corner, hi_corner - mids).min(axis=1)
-            candidates = candidates[np.lexsort((-depth, ~is_delaunay))]
-        take = min(bars.size, candidates.size)
-        out[bars[:take]] = pairs[candidates[:take]]
+    # Bars grouped by death value (stable: within a group, in bar order).
+    by_value = np.argsort(values, kind="stable")
+    uniq, first, counts = np.unique(values[by_value], return_index=True, return_counts=True)
+    lo = np.searchsorted(sorted_len, uniq, side="left")
+    n_cand = np.searchsorted(sorted_len, uniq, side="right") - lo
+    # Candidate edges of every group, flattened: group g holds order[lo[g] : lo[g] + n_cand[g]].
+    group = np.repeat(np.arange(uniq.size), n_cand)
+    start = np.cumsum(n_cand) - n_cand
+    cand = order[lo[group] + np.arange(group.size) - start[group]]
+    if np.any(n_cand > 1):
+        n = pts.shape[0]
+        rows, cols = delaunay_edges()
+        delaunay_keys = np.sort(rows * n + cols)
+        key = pairs[cand, 0] * n + pairs[cand, 1]
+        pos = np.minimum(np.searchsorted(delaunay_keys, key), max(delaunay_keys.size - 1, 0))
+        is_delaunay = delaunay_keys.size > 0 and delaunay_keys[pos] == key
+        lo_corner, hi_corner = pts.min(axis=0), pts.max(axis=0)
+        mids = 0.5 * (pts[pairs[cand, 0]] + pts[pairs[cand, 1]])
+        depth = np.minimum(mids - lo_corner, hi_corner - mids).min(axis=1)
+        # Last key: the site indices, so that the outcome does not depend on the pair order.
+        cand = cand[np.lexsort((key, -depth, ~np.asarray(is_delaunay), group))]
+    # The k-th bar of a group takes the k-th candidate of that group, while there are any.
+    bar_group = np.repeat(np.arange(uniq.size), counts)
+    rank = np.arange(by_value.size) - first[bar_group]
+    ok = rank < n_cand[bar_group]
+    out[finite[by_value[ok]]] = pairs[cand[start[bar_group[ok]] + rank[ok]]]
     return out

@@ -31,13 +31,14 @@ rather than returning a pattern: later stages need real sites.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 from scipy import fft as sp_fft
 from scipy import ndimage
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
-from scipy.spatial import cKDTree
+from scipy.spatial import Delaunay, QhullError, cKDTree
 
 from topoclass.errors import PatternError, TopoclassError
 
@@ -92,6 +93,50 @@ class SitePattern:
     @property
     def spacing_nm(self) -> float | None:
         return None if self.pixel_size_nm is None else self.spacing * self.pixel_size_nm
+
+    @cached_property
+    def delaunay(self) -> Triangulation | None:
+        """Delaunay neighbours of the sites, computed once (see :func:`triangulate`).
+
+        Both the order measures and the persistence stage need them; the triangulation is the
+        costliest step of either after ripser, so the pattern keeps it. None with fewer than
+        three sites or all sites on one line.
+        """
+        return triangulate(self.xy)
+
+
+@dataclass(frozen=True)
+class Triangulation:
+    """Delaunay neighbours of a planar point set, as plain arrays (cheap to pickle).
+
+    Attributes
+    ----------
+    indptr, indices : ndarray of int
+        CSR neighbour lists: the neighbours of point ``j`` are ``indices[indptr[j]:indptr[j+1]]``
+        (scipy's ``Delaunay.vertex_neighbor_vertices``).
+    coplanar : ndarray of int, shape (m, 2)
+        ``(point, nearest vertex)`` for the points qhull left out because they sit on (or
+        within its precision of) another point; they have no neighbours in the CSR lists.
+    """
+
+    indptr: np.ndarray
+    indices: np.ndarray
+    coplanar: np.ndarray
+
+
+def triangulate(xy: np.ndarray) -> Triangulation | None:
+    """Delaunay neighbours of points ``xy`` (n, 2); None with fewer than 3 or all collinear."""
+    xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
+    if xy.shape[0] < 3:
+        return None
+    try:
+        tri = Delaunay(xy)
+    except QhullError:
+        return None
+    indptr, indices = tri.vertex_neighbor_vertices
+    coplanar = tri.coplanar[:, [0, 2]] if tri.coplanar.size else np.zeros((0, 2), np.int64)
+    return Triangulation(indptr.astype(np.int64), indices.astype(np.int64),
+                         coplanar.astype(np.int64))
 
 
 _MIN_SIDE = 16  # pixels; a smaller image cannot show several periods of any resolvable lattice
@@ -437,12 +482,13 @@ def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: 
     band -= ndimage.gaussian_filter(low, s_sur, mode="reflect")
     # Noise of one pixel of ``band``: block averaging divides it by f, the filter by its norm.
     sigma = noise / f * _dog_norm(s_feat, s_sur)
+    found = None
     if polarity == "auto":
-        polarity = _polarity(band, a, sigma)
+        polarity, found = _polarity(band, a, sigma)
     sign = 1.0 if polarity == "bright" else -1.0
     if sign < 0:
         band = np.negative(band, out=band)
-    peaks, height = _candidates(band, a, sigma)
+    peaks, height = found if found is not None else _candidates(band, a, sigma)
     if peaks is None:
         raise PatternError(
             f"{name}: no features stand clearly above the noise at a spacing of {spacing:.1f} px; "
@@ -556,25 +602,28 @@ def _candidates(band: np.ndarray, a: float, sigma: float):
     return peaks[keep], height[keep]
 
 
-def _polarity(band: np.ndarray, spacing: float, sigma: float) -> str:
+def _polarity(band: np.ndarray, spacing: float, sigma: float):
     """"bright" or "dark": the polarity whose sites have the more regular nearest neighbours.
 
     Sites of the right polarity sit one per cell of the pattern; the extrema of the matrix
     between them (at the centres of the triangles of sites, two per cell) are weaker, merge
     and split with the local disorder, and give a much wider spread of nearest-neighbour
     distances. Measured on a central tile to save time; a close-packed pattern whose gaps look
-    regular too is caught later by its too short bonds.
+    regular too is caught later by its too short bonds. Also returns the winner's
+    ``_candidates`` when the tile is the whole band (so they need not be found again), else None.
     """
     tile = _central_tile(band, 512)
-    spread = []
+    spread, found = [], []
     for sign in (1.0, -1.0):
-        peaks, _ = _candidates(tile if sign > 0 else -tile, spacing, sigma)
+        peaks, height = _candidates(tile if sign > 0 else -tile, spacing, sigma)
+        found.append((peaks, height))
         if peaks is None or peaks.shape[0] < 8:
             spread.append(np.inf)
             continue
         nn = cKDTree(peaks).query(peaks, k=2)[0][:, 1]
         spread.append(float(np.std(nn) / np.mean(nn)))
-    return "bright" if spread[0] < spread[1] else "dark"
+    pick = 0 if spread[0] < spread[1] else 1
+    return ("bright", "dark")[pick], (found[pick] if tile.shape == band.shape else None)
 
 
 def _pixel_noise(img: np.ndarray) -> float:
