@@ -92,6 +92,38 @@ def test_square_lattice_bars_from_a_to_sqrt2_a():
     np.testing.assert_allclose(raw["h0"][:, 1], a, rtol=1e-12)
 
 
+def test_tied_death_edges_are_shared_out_one_diagonal_per_square():
+    # Elementary geometry: every loop of the square lattice dies at sqrt(2) a, so all 176 bars
+    # tie with each other and with all 2 * 176 diagonals. The k-th bar gets the k-th diagonal;
+    # each must be a different diagonal of length sqrt(2) a, and no two may cross the same
+    # square (the two diagonals of a square share its centre).
+    a = 3.0
+    nx, ny = 17, 12
+    gx, gy = np.meshgrid(np.arange(nx) * a, np.arange(ny) * a)
+    xy = np.column_stack([gx.ravel(), gy.ravel()])
+    raw = rips_persistence(xy, max_scale=2.5 * a)
+    edges = raw["h1_death_edges"]
+    assert edges.shape == ((nx - 1) * (ny - 1), 2) and np.all(edges >= 0)
+    lengths = np.hypot(*(xy[edges[:, 0]] - xy[edges[:, 1]]).T)
+    np.testing.assert_allclose(lengths, np.sqrt(2.0) * a, rtol=F32)
+    assert np.unique(np.sort(edges, axis=1), axis=0).shape[0] == edges.shape[0]
+    centres = 0.5 * (xy[edges[:, 0]] + xy[edges[:, 1]])
+    assert np.unique(np.round(centres / a, 6), axis=0).shape[0] == edges.shape[0]
+
+
+def test_given_triangulation_gives_the_same_result_as_computing_it():
+    # The pattern's shared triangulation (SitePattern.delaunay) must not change any output,
+    # duplicates included (they fold into their first copy).
+    xy = hexagonal_lattice((120, 120), 10.0, jitter=0.0, seed=0)
+    xy = np.vstack([np.delete(xy, [40, 41, 77], axis=0), xy[:4]])
+    pattern = _pattern(xy, (120, 120), 10.0)
+    given_tri = rips_persistence(xy / 10.0, max_scale=2.5, border=pattern.border, guard=1.0,
+                                 delaunay=pattern.delaunay)
+    own = rips_persistence(xy / 10.0, max_scale=2.5, border=pattern.border, guard=1.0)
+    for key, value in own.items():
+        np.testing.assert_array_equal(given_tri[key], value, err_msg=key)
+
+
 # ----------------------------------------------------------------- reference libraries
 
 

@@ -15,7 +15,13 @@ from skimage import data
 from skimage.feature import peak_local_max
 
 from topoclass.errors import PatternError, TopoclassError
-from topoclass.sites import SitePattern, _local_maxima, estimate_spacing, find_sites
+from topoclass.sites import (
+    SitePattern,
+    _local_maxima,
+    estimate_spacing,
+    find_sites,
+    triangulate,
+)
 from topoclass.synth import (
     KINDS,
     draw_sample,
@@ -337,3 +343,20 @@ def test_sub_pixel_centres_beat_whole_pixels():
     pattern = find_sites(image)
     _, _, rms = _match(pattern.xy, truth, 20, image.shape)
     assert rms * 20 <= 0.2, rms * 20
+
+
+def test_pattern_keeps_one_triangulation_equal_to_scipys():
+    # Reference library: scipy.spatial.Delaunay's vertex_neighbor_vertices. The pattern builds
+    # it once and hands the same object to every stage that asks.
+    from scipy.spatial import Delaunay
+
+    rng = np.random.default_rng(3)
+    xy = rng.uniform(0, 100, (300, 2))
+    pattern = SitePattern(xy=xy, spacing=5.0, polarity="dark", border=np.zeros(300, bool),
+                          shape=(100, 100))
+    indptr, indices = Delaunay(xy).vertex_neighbor_vertices
+    assert pattern.delaunay is pattern.delaunay
+    np.testing.assert_array_equal(pattern.delaunay.indptr, indptr)
+    np.testing.assert_array_equal(pattern.delaunay.indices, indices)
+    assert triangulate(np.zeros((2, 2))) is None
+    assert triangulate(np.column_stack([np.arange(5.0), np.arange(5.0)])) is None
