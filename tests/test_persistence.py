@@ -32,6 +32,11 @@ def _pattern(xy, shape, spacing, border_width=1.0):
     return SitePattern(xy=xy, spacing=spacing, polarity="dark", border=border, shape=shape)
 
 
+def _square_grid(a, nx, ny):
+    gx, gy = np.meshgrid(np.arange(nx) * a, np.arange(ny) * a)
+    return np.column_stack([gx.ravel(), gy.ravel()])
+
+
 def _sorted_bars(bars):
     bars = np.asarray(bars, dtype=float).reshape(-1, 2)
     return bars[np.lexsort((bars[:, 1], bars[:, 0]))]
@@ -81,10 +86,8 @@ def test_one_vacancy_gives_one_bar_from_a_to_sqrt3_a(exclude_border):
 def test_square_lattice_bars_from_a_to_sqrt2_a():
     # Elementary geometry of the square: a 4-cycle of sides a is born at a and filled when the
     # diagonals (sqrt(2) a) appear; each unit square is one independent loop.
-    a = 3.0
-    nx, ny = 17, 12
-    gx, gy = np.meshgrid(np.arange(nx) * a, np.arange(ny) * a)
-    xy = np.column_stack([gx.ravel(), gy.ravel()])
+    a, nx, ny = 3.0, 17, 12
+    xy = _square_grid(a, nx, ny)
     raw = rips_persistence(xy, max_scale=2.5 * a)
     assert raw["h1"].shape == ((nx - 1) * (ny - 1), 2)
     np.testing.assert_allclose(raw["h1"][:, 0], a, rtol=F32)
@@ -97,10 +100,8 @@ def test_tied_death_edges_are_shared_out_one_diagonal_per_square():
     # tie with each other and with all 2 * 176 diagonals. The k-th bar gets the k-th diagonal;
     # each must be a different diagonal of length sqrt(2) a, and no two may cross the same
     # square (the two diagonals of a square share its centre).
-    a = 3.0
-    nx, ny = 17, 12
-    gx, gy = np.meshgrid(np.arange(nx) * a, np.arange(ny) * a)
-    xy = np.column_stack([gx.ravel(), gy.ravel()])
+    a, nx, ny = 3.0, 17, 12
+    xy = _square_grid(a, nx, ny)
     raw = rips_persistence(xy, max_scale=2.5 * a)
     edges = raw["h1_death_edges"]
     assert edges.shape == ((nx - 1) * (ny - 1), 2) and np.all(edges >= 0)
