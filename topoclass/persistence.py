@@ -532,13 +532,15 @@ def _death_edges(
         rows, cols = delaunay_edges()
         delaunay_keys = np.sort(rows * n + cols)
         key = pairs[cand, 0] * n + pairs[cand, 1]
-        pos = np.minimum(np.searchsorted(delaunay_keys, key), max(delaunay_keys.size - 1, 0))
-        is_delaunay = delaunay_keys.size > 0 and delaunay_keys[pos] == key
+        is_delaunay = np.zeros(cand.size, dtype=bool)
+        if delaunay_keys.size:
+            pos = np.minimum(np.searchsorted(delaunay_keys, key), delaunay_keys.size - 1)
+            is_delaunay = delaunay_keys[pos] == key
         lo_corner, hi_corner = pts.min(axis=0), pts.max(axis=0)
         mids = 0.5 * (pts[pairs[cand, 0]] + pts[pairs[cand, 1]])
         depth = np.minimum(mids - lo_corner, hi_corner - mids).min(axis=1)
         # Last key: the site indices, so that the outcome does not depend on the pair order.
-        cand = cand[np.lexsort((key, -depth, ~np.asarray(is_delaunay), group))]
+        cand = cand[np.lexsort((key, -depth, ~is_delaunay, group))]
     # The k-th bar of a group takes the k-th candidate of that group, while there are any.
     bar_group = np.repeat(np.arange(uniq.size), counts)
     rank = np.arange(by_value.size) - first[bar_group]
