@@ -347,6 +347,7 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
 
     from topoclass.features import extract_texture
     from topoclass.images import read_micrograph
+    from topoclass.persistence import _radius_graph  # the very graph pattern_persistence uses
 
     spacing, size = 12.0, 1024
     xy = hexagonal_lattice((size, size), spacing, angle=17.0, jitter=0.04, margin=-spacing,
@@ -370,8 +371,7 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
     # same radius graph, with the representative cocycles that pattern_persistence asks for.
     pattern = find_sites(read_micrograph(path).image)
     pts = pattern.xy / pattern.spacing
-    pairs = cKDTree(pts).query_pairs(MAX_SCALE, output_type="ndarray")
-    dist = np.hypot(*(pts[pairs[:, 0]] - pts[pairs[:, 1]]).T)
+    pairs, dist = _radius_graph(pts, MAX_SCALE, cKDTree(pts))
     graph = coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(len(pts), len(pts)))
 
     def bare_ripser():

@@ -294,12 +294,18 @@ def write_defects_csv(defects: Sequence[dict], path: str | Path) -> Path:
 
 
 def site_coordination(pattern: SitePattern) -> np.ndarray:
-    """Delaunay coordination of every site (via :func:`topoclass.order.coordination`)."""
+    """Delaunay coordination of every site (via :func:`topoclass.order.coordination`).
+
+    Uses the pattern's own triangulation (:attr:`SitePattern.delaunay`), which the order
+    measures have usually built already.
+    """
     from topoclass.order import coordination
 
     if pattern.n_sites < 3:
         return np.zeros(pattern.n_sites, dtype=np.int64)
-    return np.asarray(coordination(pattern.xy), dtype=np.int64)
+    tri = pattern.delaunay
+    neighbours = (tri.indptr, tri.indices) if tri is not None else None
+    return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
 
 
 def image_to_figure_pixels(shape: tuple[int, int]) -> tuple[float, int]:
