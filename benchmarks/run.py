@@ -140,7 +140,7 @@ reported as missed; the note of issue 6 proposes restating it.
 the workers (jobs=1 went from ~4 s to ~2 s for 40 images); the parent's own CPU in a jobs=2
 run is ~0.17 s of the ~1.8 s. What caps the speed-up is the machine: measured with the
 workers' CPU times (/proc), the two workers spend 2.0-2.4 s CPU on the 40 images that one
-process does in 1.55 s, i.e. each of the two vCPUs of this KVM guest runs ~1.3x slower while
+process does in 1.5-1.7 s, i.e. each of the two vCPUs of this KVM guest runs ~1.3x slower while
 the other is busy, and the harness's own capacity probe reads 1.5-1.9 free cores. The result
 is 1.5-1.8 from run to run; joblib batch_size=1 instead of "auto" was no better. The first
 jobs=2 call also pays for starting two workers that import topoclass, ripser and
