@@ -37,7 +37,7 @@ from topoclass.model import (  # noqa: E402
 )
 from topoclass.synth import write_dataset  # noqa: E402
 from topoclass.vectorize import make_features  # noqa: E402
-from topoclass.workflow import labelled_textures  # noqa: E402
+from topoclass.workflow import labelled_records  # noqa: E402
 
 FEATURE_SET_NAMES = ("two-bar", "order", "topology", "all")
 OUT = Path(__file__).with_name("accuracy.md")
@@ -58,17 +58,17 @@ def measure_accuracy(per_class: int = 24, size: int = 320, seed: int = 2026, cv:
         t_data = time.perf_counter() - t0
         labels = read_labels(sheet, n_folds=cv)
         t0 = time.perf_counter()
-        textures, y, groups, failures = labelled_textures(
+        records, y, groups, failures = labelled_records(
             labels, FeatureSettings(), jobs=jobs, cache_dir=base / "cache"
         )
-        t_textures = time.perf_counter() - t0
+        t_records = time.perf_counter() - t0
         method, reason = choose_calibration(y, "auto")
         rows = []
         t0 = time.perf_counter()
         for name in FEATURE_SET_NAMES:
             pipeline = build_pipeline(make_features(name), DEFAULT_CLASSIFIER, seed=0)
-            bare = cross_validate_model(pipeline, textures, y, groups, cv=cv, seed=0)
-            calibrated = cross_validate_model(pipeline, textures, y, groups, cv=cv, seed=0,
+            bare = cross_validate_model(pipeline, records, y, groups, cv=cv, seed=0)
+            calibrated = cross_validate_model(pipeline, records, y, groups, cv=cv, seed=0,
                                               calibration=method)
             rows.append({
                 "feature_set": name,
@@ -93,7 +93,7 @@ def measure_accuracy(per_class: int = 24, size: int = 320, seed: int = 2026, cv:
         "classes": sorted(set(y.tolist())),
         "calibration": method,
         "calibration_reason": reason,
-        "seconds": {"write_dataset": t_data, "textures": t_textures, "cross_validation": t_cv},
+        "seconds": {"write_dataset": t_data, "records": t_records, "cross_validation": t_cv},
     }
 
 
@@ -128,7 +128,7 @@ def accuracy_markdown(result: dict, *, heading: str = "#") -> str:
             f"{row['ece_calibrated']:.3f} |"
         )
     s = r["seconds"]
-    lines += ["", f"Time: data {s['write_dataset']:.0f} s, textures {s['textures']:.0f} s, "
+    lines += ["", f"Time: data {s['write_dataset']:.0f} s, records {s['records']:.0f} s, "
               f"cross-validation {s['cross_validation']:.0f} s.", ""]
     return "\n".join(lines)
 

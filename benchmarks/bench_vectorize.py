@@ -18,10 +18,11 @@ import numpy as np
 from persim import PersistenceImager
 
 from topoclass.persistence import Diagrams
-from topoclass.vectorize import DEFAULT_ORDER_KEYS, Texture, make_features
+from topoclass.records import PatternRecord
+from topoclass.vectorize import DEFAULT_ORDER_KEYS, make_features
 
 
-def invented_records(n_records: int, n_sites: int, seed: int = 0) -> list[Texture]:
+def invented_records(n_records: int, n_sites: int, seed: int = 0) -> list[PatternRecord]:
     rng = np.random.default_rng(seed)
     records = []
     for i in range(n_records):
@@ -35,7 +36,7 @@ def invented_records(n_records: int, n_sites: int, seed: int = 0) -> list[Textur
             h1_edges=np.zeros((n1, 2), int), spacing=10.0, max_scale=2.5,
         )
         order = {k: float(rng.random()) for k in DEFAULT_ORDER_KEYS}
-        records.append(Texture(diagrams, order, source=f"invented_{i}.tif"))
+        records.append(PatternRecord(diagrams, order, source=f"invented_{i}.tif"))
     return records
 
 

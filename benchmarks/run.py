@@ -39,9 +39,10 @@ from threadpoolctl import threadpool_info, threadpool_limits  # noqa: E402
 
 from topoclass.order import order_measures  # noqa: E402
 from topoclass.persistence import pattern_persistence, rips_persistence  # noqa: E402
+from topoclass.records import PatternRecord  # noqa: E402
 from topoclass.sites import find_sites  # noqa: E402
 from topoclass.synth import hexagonal_lattice, render_micrograph  # noqa: E402
-from topoclass.vectorize import Texture, make_features  # noqa: E402
+from topoclass.vectorize import make_features  # noqa: E402
 
 RESULTS = HERE / "RESULTS.md"
 ACCURACY = HERE / "accuracy.md"
@@ -226,7 +227,7 @@ def scaling_image(n_sites: int, *, seed: int = 0) -> np.ndarray:
                              illumination=0.2, seed=seed + 1)
 
 
-def chain(image: np.ndarray, union, *, source: str = "invented") -> tuple[dict, Texture]:
+def chain(image: np.ndarray, union, *, source: str = "invented") -> tuple[dict, PatternRecord]:
     """find_sites → pattern_persistence → order_measures → fitted union transform; CPU s each."""
     t = [time.process_time()]
     pattern = find_sites(image, source=source)
@@ -235,20 +236,20 @@ def chain(image: np.ndarray, union, *, source: str = "invented") -> tuple[dict, 
     t.append(time.process_time())
     order = order_measures(pattern)
     t.append(time.process_time())
-    texture = Texture(diagrams=diagrams, order=order, source=source)
+    record = PatternRecord(diagrams=diagrams, order=order, source=source)
     if union is not None:
-        union.transform([texture])
+        union.transform([record])
     t.append(time.process_time())
     steps = np.diff(t)
     return ({"sites_s": steps[0], "persistence_s": steps[1], "order_s": steps[2],
              "vectorize_s": steps[3], "total_s": float(t[-1] - t[0]),
-             "n_sites": pattern.n_sites}, texture)
+             "n_sites": pattern.n_sites}, record)
 
 
 def fitted_union(image: np.ndarray):
-    """``make_features("all")`` fitted on the texture of one image (the fit is not timed)."""
-    _, texture = chain(image, None)
-    return make_features("all").fit([texture])
+    """``make_features("all")`` fitted on the record of one image (the fit is not timed)."""
+    _, record = chain(image, None)
+    return make_features("all").fit([record])
 
 
 def measure_scaling(sizes, repeats: dict, *, union=None, keep: int | None = None,
@@ -314,7 +315,7 @@ def _rss_child(path: str) -> None:
     image = np.load(path)
     union = fitted_union(image[:600, :600].copy())  # fit on a corner: small, not the big image
     before = peak_rss_mb()
-    row, texture = chain(image, union)
+    row, record = chain(image, union)
     print(json.dumps({
         "n_sites": row["n_sites"],
         "image_px": int(image.shape[0]),
@@ -324,7 +325,7 @@ def _rss_child(path: str) -> None:
         "peak_rss_mb": peak_rss_mb(),
         "ru_maxrss_self_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
         "cpu_s": row["total_s"],
-        "h1_bars": int(texture.diagrams.h1.shape[0]),
+        "h1_bars": int(record.diagrams.h1.shape[0]),
     }))
 
 
@@ -333,7 +334,7 @@ def _rss_child(path: str) -> None:
 
 
 def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict:
-    """Best-of-N wall time of ``extract_texture`` + fitted "all" transform on a 1 MP file, over
+    """Best-of-N wall time of ``measure_pattern`` + fitted "all" transform on a 1 MP file, over
     best-of-N of ``read_micrograph`` + one ``gaussian_filter`` (sigma = spacing / 4).
 
     The file is an invented 1024 x 1024 16-bit TIFF (spacing 12 px, jitter 0.04, blur, noise,
@@ -345,7 +346,7 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
     from scipy.sparse import coo_matrix
     from scipy.spatial import cKDTree
 
-    from topoclass.features import extract_texture
+    from topoclass.features import measure_pattern
     from topoclass.images import read_micrograph
     from topoclass.persistence import _radius_graph  # the very graph pattern_persistence uses
 
@@ -356,8 +357,8 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
                               illumination=0.3, seed=seed + 1)
     path = workdir / "micrograph_1mp.tif"
     tifffile.imwrite(path, np.round(image * 65535).astype(np.uint16))
-    texture = extract_texture(path)
-    union = make_features("all").fit([texture])
+    record = measure_pattern(path)
+    union = make_features("all").fit([record])
     sigma = spacing / 4.0
 
     def floor():
@@ -365,7 +366,7 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
         ndimage.gaussian_filter(micrograph.image, sigma)
 
     def full():
-        union.transform([extract_texture(path)])
+        union.transform([measure_pattern(path)])
 
     # The part no change of topoclass can remove: ripser's H1 alone, on the same sites and the
     # same radius graph, with the representative cocycles that pattern_persistence asks for.
@@ -665,7 +666,7 @@ def details_text(results: dict) -> str:
             f"- 1 MP 16-bit TIFF, spacing {f['spacing_px']:g} px, {f['n_sites']} sites; "
             f"best of {f['repeats']}, one thread",
             f"- floor (read_micrograph + gaussian_filter sigma {f['sigma_px']:g} px): "
-            f"{f['floor_s'] * 1e3:.1f} ms; features (extract_texture + \"all\" transform): "
+            f"{f['floor_s'] * 1e3:.1f} ms; features (measure_pattern + \"all\" transform): "
             f"{f['features_s'] * 1e3:.1f} ms; ratio **{f['ratio']:.2f}**",
             f"- ripser's H1 alone on the same sites ({f['ripser_edges']} pairs closer than "
             f"{MAX_SCALE} spacings, with cocycles): {f['ripser_s'] * 1e3:.1f} ms, "

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 import topoclass.features as features
-from topoclass.features import FeatureSettings, compute_textures, extract_texture
+from topoclass.features import FeatureSettings, measure_pattern, measure_patterns
 
 
 @pytest.fixture()
@@ -18,30 +18,30 @@ def images(small_dataset):
 
 def _count_extractions(monkeypatch) -> list:
     calls = []
-    real = features.extract_texture
+    real = features.measure_pattern
 
     def counting(path, settings=None):
         calls.append(path)
         return real(path, settings)
 
-    monkeypatch.setattr(features, "extract_texture", counting)
+    monkeypatch.setattr(features, "measure_pattern", counting)
     return calls
 
 
 def test_cache_hit_never_recomputes_and_a_changed_setting_does(images, tmp_path, monkeypatch):
     calls = _count_extractions(monkeypatch)
-    first = compute_textures(images, cache_dir=tmp_path)
+    first = measure_patterns(images, cache_dir=tmp_path)
     assert len(calls) == len(images)
-    again = compute_textures(images, cache_dir=tmp_path)
+    again = measure_patterns(images, cache_dir=tmp_path)
     assert len(calls) == len(images)  # all from the cache
     for a, b in zip(first, again, strict=True):
         assert a.sha256 == b.sha256
-        for f in dataclasses.fields(a.texture.diagrams):
+        for f in dataclasses.fields(a.record.diagrams):
             np.testing.assert_array_equal(
-                getattr(a.texture.diagrams, f.name), getattr(b.texture.diagrams, f.name)
+                getattr(a.record.diagrams, f.name), getattr(b.record.diagrams, f.name)
             )
-        assert dict(a.texture.order) == dict(b.texture.order)
-    compute_textures(images, FeatureSettings(max_scale=2.0), cache_dir=tmp_path)
+        assert dict(a.record.order) == dict(b.record.order)
+    measure_patterns(images, FeatureSettings(max_scale=2.0), cache_dir=tmp_path)
     assert len(calls) == 2 * len(images)  # another setting, another key
 
 
@@ -59,34 +59,34 @@ def test_settings_key_depends_on_every_setting_and_the_version(monkeypatch):
 
 
 def test_damaged_cache_entry_is_recomputed(images, tmp_path, monkeypatch):
-    compute_textures(images[:1], cache_dir=tmp_path)
+    measure_patterns(images[:1], cache_dir=tmp_path)
     (entry,) = list(tmp_path.rglob("*.npz"))
     entry.write_bytes(b"garbage")
     calls = _count_extractions(monkeypatch)
-    (result,) = compute_textures(images[:1], cache_dir=tmp_path)
+    (result,) = measure_patterns(images[:1], cache_dir=tmp_path)
     assert result.ok and len(calls) == 1
 
 
 def test_parallel_results_equal_serial_and_keep_order(images, tmp_path):
-    serial = compute_textures(images, cache_dir="", jobs=1)
-    parallel = compute_textures(images, cache_dir="", jobs=2)
+    serial = measure_patterns(images, cache_dir="", jobs=1)
+    parallel = measure_patterns(images, cache_dir="", jobs=2)
     assert [r.path for r in parallel] == [r.path for r in serial]
     for a, b in zip(serial, parallel, strict=True):
-        np.testing.assert_array_equal(a.texture.diagrams.h1, b.texture.diagrams.h1)
-        assert dict(a.texture.order) == dict(b.texture.order)
+        np.testing.assert_array_equal(a.record.diagrams.h1, b.record.diagrams.h1)
+        assert dict(a.record.order) == dict(b.record.order)
 
 
 def test_one_bad_image_is_reported_and_the_rest_go_on(images, tmp_path):
     bad = tmp_path / "broken.png"
     bad.write_bytes(b"\x89PNG\r\n\x1a\n" + b"\x00" * 40)
     missing = tmp_path / "missing.tif"
-    results = compute_textures([images[0], bad, missing, images[1]], cache_dir="", jobs=2)
+    results = measure_patterns([images[0], bad, missing, images[1]], cache_dir="", jobs=2)
     assert [r.ok for r in results] == [True, False, False, True]
     for r in results[1:3]:
         assert str(r.path) in r.error and "\n" not in r.error
 
 
-def test_extract_texture_carries_the_source(images):
-    texture = extract_texture(images[0])
-    assert texture.source == str(images[0])
-    assert texture.diagrams.spacing > 0
+def test_measure_pattern_carries_the_source(images):
+    record = measure_pattern(images[0])
+    assert record.source == str(images[0])
+    assert record.diagrams.spacing > 0

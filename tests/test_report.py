@@ -19,6 +19,7 @@ from scipy.sparse.csgraph import minimum_spanning_tree
 from scipy.spatial import Delaunay, distance_matrix
 
 from topoclass import report
+from topoclass.errors import TopoclassError
 from topoclass.persistence import pattern_persistence
 from topoclass.scoring import CAUTION
 from topoclass.sites import find_sites
@@ -41,7 +42,7 @@ def _rgb(path: Path) -> np.ndarray:
 
 def test_overlay_colours_each_site_by_its_delaunay_coordination(vacancy, tmp_path):
     image, _, _, pattern = vacancy
-    report._save(report.plot_sites(image, pattern), tmp_path / "overlay.png")
+    report.save_figure(report.plot_sites(image, pattern), tmp_path / "overlay.png")
     picture = _rgb(tmp_path / "overlay.png")
     scale, strip = report.image_to_figure_pixels(image.shape)
     assert picture.shape[:2] == (round(image.shape[0] * scale) + strip,
@@ -65,7 +66,7 @@ def test_overlay_colours_each_site_by_its_delaunay_coordination(vacancy, tmp_pat
 
 def test_overlay_draws_border_sites_hollow(vacancy, tmp_path):
     image, _, _, pattern = vacancy
-    report._save(report.plot_sites(image, pattern), tmp_path / "overlay.png")
+    report.save_figure(report.plot_sites(image, pattern), tmp_path / "overlay.png")
     picture = _rgb(tmp_path / "overlay.png")
     scale, _ = report.image_to_figure_pixels(image.shape)
     inside = [(x, y) for x, y in pattern.xy[pattern.border]
@@ -162,7 +163,7 @@ def test_cut_bars_are_placed_in_a_wide_hole(tmp_path):
 def test_diagram_picture_draws_both_dimensions(vacancy, tmp_path):
     _, _, _, pattern = vacancy
     diagrams = pattern_persistence(pattern, exclude_border=False)
-    report._save(report.plot_diagrams(diagrams), tmp_path / "diagram.png")
+    report.save_figure(report.diagram_and_barcode_figure(diagrams), tmp_path / "diagram.png")
     picture = _rgb(tmp_path / "diagram.png")
     for kind in ("h0", "h1"):
         want = np.array(to_rgb(report.DEFECT_COLOURS[kind])) * 255
@@ -176,7 +177,7 @@ def test_locate_defects_refuses_diagrams_of_another_pattern(vacancy):
 
     small = SitePattern(xy=pattern.xy[:10], spacing=pattern.spacing, polarity="dark",
                         border=pattern.border[:10], shape=pattern.shape)
-    with pytest.raises(report.TopoclassError, match="do not belong"):
+    with pytest.raises(TopoclassError, match="do not belong"):
         report.locate_defects(small, diagrams)
 
 
@@ -425,11 +426,11 @@ def test_batch_report_of_a_partly_written_file(tmp_path):
 
 
 def test_batch_report_refuses_a_missing_or_foreign_csv(tmp_path):
-    with pytest.raises(report.TopoclassError, match="no such scores file"):
+    with pytest.raises(TopoclassError, match="no such scores file"):
         report.write_batch_report(tmp_path / "missing.csv")
     other = tmp_path / "labels.csv"
     other.write_text("a,b\n1,2\n")
-    with pytest.raises(report.TopoclassError, match="image/status"):
+    with pytest.raises(TopoclassError, match="image/status"):
         report.write_batch_report(other)
 
 

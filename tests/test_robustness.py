@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
 from topoclass.errors import TopoclassError
-from topoclass.features import compute_textures
+from topoclass.features import measure_patterns
 from topoclass.persistence import pattern_persistence
 from topoclass.sites import SitePattern, find_sites
 from topoclass.synth import hexagonal_lattice, render_micrograph
@@ -65,7 +65,7 @@ def test_bad_images_become_error_results_in_a_batch(make, tmp_path):
     if image.dtype != np.uint8:
         image = (image * 255).astype(np.uint8)
     skimage.io.imsave(bad, image, check_contrast=False)
-    results = compute_textures([bad, good], cache_dir="")
+    results = measure_patterns([bad, good], cache_dir="")
     assert [r.ok for r in results] == [False, True]
     assert str(bad) in results[0].error and "\n" not in results[0].error
 
@@ -75,5 +75,5 @@ def test_nan_only_float_tiff_is_an_error_row(tmp_path):
 
     path = tmp_path / "nan.tif"
     tifffile.imwrite(path, np.full((64, 64), np.nan, np.float32))
-    (result,) = compute_textures([path], cache_dir="")
+    (result,) = measure_patterns([path], cache_dir="")
     assert not result.ok and str(path) in result.error

@@ -28,17 +28,16 @@ from sklearn.utils import estimator_checks as ec
 
 from topoclass.errors import TopoclassError
 from topoclass.persistence import Diagrams
+from topoclass.records import PatternRecord, barcode_summary
 from topoclass.vectorize import (
     DEFAULT_ORDER_KEYS,
     FEATURE_SETS,
     BarcodeStatistics,
     BettiCurveFeatures,
+    IdealLatticeResiduals,
     OrderMeasureFeatures,
-    PerfectGridResiduals,
     PersistenceImageFeatures,
     PersistenceLandscapeFeatures,
-    Texture,
-    barcode_summary,
     make_features,
 )
 
@@ -47,7 +46,7 @@ TRANSFORMERS = [
     PersistenceLandscapeFeatures,
     BettiCurveFeatures,
     BarcodeStatistics,
-    PerfectGridResiduals,
+    IdealLatticeResiduals,
     OrderMeasureFeatures,
 ]
 
@@ -80,9 +79,9 @@ def _order(rng) -> dict[str, float]:
     return {key: float(rng.random()) for key in DEFAULT_ORDER_KEYS}
 
 
-def _textures(n=6, seed=0, **kwargs) -> list[Texture]:
+def _records(n=6, seed=0, **kwargs) -> list[PatternRecord]:
     rng = np.random.default_rng(seed)
-    return [Texture(_random_diagrams(rng, **kwargs), _order(rng), source=f"membrane_{i}.tif")
+    return [PatternRecord(_random_diagrams(rng, **kwargs), _order(rng), source=f"membrane_{i}.tif")
             for i in range(n)]
 
 
@@ -110,9 +109,9 @@ def test_pimage_of_one_point_is_the_pixel_integrated_gaussian():
     # w(b, p) * phi_(b,p), phi a 2-D Gaussian, integrated over each pixel. Reference: scipy's
     # multivariate normal CDF at the pixel corners (inclusion-exclusion).
     sigma, b, p = 0.05, 1.2, 0.3
-    train = [Texture(_diagrams([1.0], [[0.5, 0.6], [2.0, 3.0]], max_scale=3.0))]
+    train = [PatternRecord(_diagrams([1.0], [[0.5, 0.6], [2.0, 3.0]], max_scale=3.0))]
     pim = PersistenceImageFeatures(resolution=(12, 8), sigma=sigma, dims=(1,), per_site=False)
-    image = pim.fit(train).transform([Texture(_diagrams([1.0], [[b, b + p]]))])[0]
+    image = pim.fit(train).transform([PatternRecord(_diagrams([1.0], [[b, b + p]]))])[0]
     image = image.reshape(12, 8)
 
     mvn = scipy.stats.multivariate_normal(mean=[b, p], cov=sigma**2 * np.eye(2))
@@ -131,10 +130,10 @@ def test_pimage_h0_is_a_one_dimensional_gaussian_profile():
     # H0 births are all 0, so the image collapses to a 1-D Gaussian over persistence (Adams et
     # al. 2017); reference: scipy.stats.norm CDF differences over the pixels.
     sigma, death = 0.08, 1.1
-    train = [Texture(_diagrams([0.4, 2.0]))]
+    train = [PatternRecord(_diagrams([0.4, 2.0]))]
     pim = PersistenceImageFeatures(resolution=(4, 15), sigma=sigma, dims=(0,),
                                    weight_power=2.0, per_site=False).fit(train)
-    profile = pim.transform([Texture(_diagrams([death]))])[0]
+    profile = pim.transform([PatternRecord(_diagrams([death]))])[0]
     edges = pim.persistence_edges_[0]
     expected = death**2 * np.diff(scipy.stats.norm(death, sigma).cdf(edges))
     np.testing.assert_allclose(profile, expected, atol=1e-12)
@@ -147,7 +146,7 @@ def test_pimage_agrees_with_persim():
     sigma = 0.125
     # Births span [1.0, 1.5] and persistence reaches 0.625, so the learned grid is
     # [0.875, 1.625] x [0, 0.75] in 6 x 6 pixels of 0.125 (exact in binary).
-    train = [Texture(_diagrams([1.0], [[1.0, 1.25], [1.5, 2.125], [1.25, 1.5]]))]
+    train = [PatternRecord(_diagrams([1.0], [[1.0, 1.25], [1.5, 2.125], [1.25, 1.5]]))]
     pim = PersistenceImageFeatures(resolution=(6, 6), sigma=sigma, dims=(1,), per_site=False)
     pim.fit(train)
     np.testing.assert_allclose(pim.birth_edges_, np.arange(0.875, 1.626, 0.125))
@@ -159,13 +158,13 @@ def test_pimage_agrees_with_persim():
     rng = np.random.default_rng(3)
     births = rng.uniform(0.7, 1.9, 30)  # some outside the learned range on purpose
     bars = np.column_stack([births, births + rng.uniform(0.0, 0.9, 30)])
-    ours = pim.transform([Texture(_diagrams([1.0], bars))])[0].reshape(6, 6)
+    ours = pim.transform([PatternRecord(_diagrams([1.0], bars))])[0].reshape(6, 6)
     np.testing.assert_allclose(ours, ref.transform(bars, skew=True), rtol=1e-9, atol=1e-12)
 
 
 def test_pimage_per_site_divides_by_number_of_sites():
     # Per-site normalisation (our convention): n_sites = len(h0) + 1 when Diagrams lacks it.
-    records = _textures(3)
+    records = _records(3)
     raw = PersistenceImageFeatures(per_site=False).fit(records).transform(records)
     norm = PersistenceImageFeatures(per_site=True).fit(records).transform(records)
     n_sites = np.array([r.diagrams.h0.shape[0] + 1 for r in records])
@@ -173,13 +172,13 @@ def test_pimage_per_site_divides_by_number_of_sites():
 
 
 def test_per_site_features_do_not_change_with_the_field_of_view():
-    # Our per-site convention: the same texture seen over twice the area (every H1 bar twice,
+    # Our per-site convention: the same record seen over twice the area (every H1 bar twice,
     # twice the sites: two copies of the H0 bars plus the one bar that joins the copies) gives
     # the same H1 persistence image, H1 Betti curve and H1 barcode statistics.
     rng = np.random.default_rng(8)
     one = _random_diagrams(rng, n0=59, n1=30)
     two = _diagrams(np.r_[one.h0[:, 1], one.h0[:, 1], 1.0], np.vstack([one.h1, one.h1]))
-    records = [Texture(one), Texture(two)]  # n_sites 59 + 1 = 60 and 119 + 1 = 120
+    records = [PatternRecord(one), PatternRecord(two)]  # n_sites 59 + 1 = 60 and 119 + 1 = 120
     for est in (PersistenceImageFeatures(), BettiCurveFeatures(), BarcodeStatistics()):
         out = est.fit(records).transform(records)
         keep = [i for i, n in enumerate(est.get_feature_names_out())
@@ -197,8 +196,8 @@ def test_landscape_of_one_bar_is_the_tent():
     # at (b + d) / 2, and lambda_k = 0 for k >= 2.
     b, d = 0.8, 1.6
     plf = PersistenceLandscapeFeatures(n_landscapes=3, n_points=21)
-    values = plf.fit([Texture(_diagrams([1.0], [[b, d]]))]).transform(
-        [Texture(_diagrams([1.0], [[b, d]]))])[0].reshape(3, 21)
+    values = plf.fit([PatternRecord(_diagrams([1.0], [[b, d]]))]).transform(
+        [PatternRecord(_diagrams([1.0], [[b, d]]))])[0].reshape(3, 21)
     t = plf.grids_[1]
     np.testing.assert_allclose(values[0], np.maximum(0, np.minimum(t - b, d - t)), atol=1e-12)
     assert values[0].max() == pytest.approx((d - b) / 2)
@@ -212,7 +211,7 @@ def test_landscapes_agree_with_persim_and_decrease_in_k():
     rng = np.random.default_rng(7)
     births = rng.uniform(0.9, 1.8, 40)
     bars = np.column_stack([births, births + rng.exponential(0.3, 40)])
-    record = Texture(_diagrams([1.0], bars))
+    record = PatternRecord(_diagrams([1.0], bars))
     k = 5
     plf = PersistenceLandscapeFeatures(n_landscapes=k, n_points=50).fit([record])
     ours = plf.transform([record])[0].reshape(k, 50)
@@ -230,7 +229,7 @@ def test_landscapes_agree_with_persim_and_decrease_in_k():
 
 
 def test_landscape_h0_option_and_names():
-    records = _textures(3)
+    records = _records(3)
     plf = PersistenceLandscapeFeatures(n_landscapes=2, n_points=4, dims=(0, 1)).fit(records)
     names = list(plf.get_feature_names_out())
     assert len(names) == 2 * 2 * 4 and names[0].startswith("h0_landscape_k1_t")
@@ -260,7 +259,7 @@ def test_betti_curves_count_components_and_ripser_loops():
     rips_h0 = ripser.ripser(xy, maxdim=0)["dgms"][0][:-1, 1]
     np.testing.assert_allclose(np.sort(rips_h0), np.sort(h0_deaths), rtol=1e-6)
 
-    record = Texture(_diagrams(h0_deaths, h1, max_scale=0.4))
+    record = PatternRecord(_diagrams(h0_deaths, h1, max_scale=0.4))
     betti = BettiCurveFeatures(n_points=40, per_site=False).fit([record])
     values = betti.transform([record])[0]
     grid = betti.grid_
@@ -274,7 +273,7 @@ def test_betti_curves_count_components_and_ripser_loops():
 
 
 def test_betti_grid_from_max_scale_or_fixed():
-    records = _textures(2, max_scale=2.0)
+    records = _records(2, max_scale=2.0)
     fitted = BettiCurveFeatures(n_points=4).fit(records)
     np.testing.assert_allclose(fitted.grid_, [0.25, 0.75, 1.25, 1.75])
     assert list(fitted.get_feature_names_out()[:2]) == ["betti0_t0.25", "betti0_t0.75"]
@@ -344,7 +343,7 @@ def test_per_site_values_use_the_site_counts_the_record_carries():
 
 
 def test_barcode_statistics_names_and_raw_option():
-    records = _textures(3)
+    records = _records(3)
     per_site = BarcodeStatistics().fit(records)
     names = list(per_site.get_feature_names_out())
     assert {"h0_length_variance", "h1_length_sum_per_site", "h1_entropy_normalised",
@@ -363,15 +362,15 @@ def test_perfect_grid_residuals_vanish_on_a_perfect_lattice_only():
     # A perfect triangular lattice: every H0 bar dies at the spacing and every loop is filled by
     # triangles as it forms, so both measures are 0 (common practice); diagrams from ripser.
     xy = _hex_lattice()
-    perfect = Texture(_rips_diagrams(xy, 2.5))
+    perfect = PatternRecord(_rips_diagrams(xy, 2.5))
     rng = np.random.default_rng(2)
-    jittered = Texture(_rips_diagrams(xy + rng.normal(scale=0.08, size=xy.shape), 2.5))
-    pgr = PerfectGridResiduals().fit([perfect, jittered])
+    jittered = PatternRecord(_rips_diagrams(xy + rng.normal(scale=0.08, size=xy.shape), 2.5))
+    pgr = IdealLatticeResiduals().fit([perfect, jittered])
     assert list(pgr.get_feature_names_out()) == ["h0_length_variance", "h1_length_sum_per_site"]
     values = pgr.transform([perfect, jittered])
     assert np.all(np.abs(values[0]) < 1e-6)  # ripser works in float32
     assert np.all(values[1] > 1e-4)
-    raw = PerfectGridResiduals(per_site=False).fit([jittered])
+    raw = IdealLatticeResiduals(per_site=False).fit([jittered])
     assert list(raw.get_feature_names_out()) == ["h0_length_variance", "h1_length_sum"]
     s = barcode_summary(jittered.diagrams)
     np.testing.assert_allclose(raw.transform([jittered])[0],
@@ -382,7 +381,7 @@ def test_perfect_grid_residuals_vanish_on_a_perfect_lattice_only():
 
 
 def test_order_measures_selected_in_order_and_missing_keys_reported():
-    records = _textures(3)
+    records = _records(3)
     om = OrderMeasureFeatures().fit(records)
     assert list(om.get_feature_names_out()) == list(DEFAULT_ORDER_KEYS)
     expected = [[r.order[k] for k in DEFAULT_ORDER_KEYS] for r in records]
@@ -390,12 +389,12 @@ def test_order_measures_selected_in_order_and_missing_keys_reported():
     two = OrderMeasureFeatures(keys=("nn_cv", "psi6_global")).fit(records)
     np.testing.assert_array_equal(two.transform(records)[:, 0], [r.order["nn_cv"] for r in records])
 
-    broken = Texture(records[0].diagrams, {"psi6_global": 0.9}, source="pore_017.tif")
+    broken = PatternRecord(records[0].diagrams, {"psi6_global": 0.9}, source="pore_017.tif")
     with pytest.raises(TopoclassError, match=r"pore_017\.tif.*psi6_local_mean"):
         OrderMeasureFeatures().fit(records + [broken])
     with pytest.raises(TopoclassError, match="pore_017"):
         om.transform([broken])
-    with pytest.raises(TopoclassError, match="not a Texture"):
+    with pytest.raises(TopoclassError, match="not a PatternRecord"):
         om.fit([records[0].diagrams])
 
 
@@ -403,12 +402,12 @@ def test_order_measures_selected_in_order_and_missing_keys_reported():
 
 # Checks from sklearn.utils.estimator_checks that need no data, run as they are. All others fit
 # on random 2-D float arrays, which these transformers do not take (their input is a list of
-# Texture records; the tag input_tags.two_d_array is False, so check_estimator skips them all).
+# PatternRecords; the tag input_tags.two_d_array is False, so check_estimator skips them all).
 # Skipped for that reason: check_estimators_overwrite_params, check_dont_overwrite_parameters,
 # check_estimators_fit_returns_self, check_fit_idempotent, check_estimators_pickle,
 # check_dict_unchanged, check_methods_subset_invariance, check_methods_sample_order_invariance,
 # check_transformer_general, check_n_features_in*, check_fit2d_*, check_fit1d, dtype/NaN/sparse
-# checks. The first eight are re-done below on Texture records, following the same logic.
+# checks. The first eight are re-done below on PatternRecord records, following the same logic.
 DATA_FREE_CHECKS = [
     ec.check_estimator_cloneable,
     ec.check_estimator_repr,
@@ -435,8 +434,8 @@ def test_sklearn_rules_on_records(cls):
     # The logic of sklearn's check_estimators_overwrite_params, check_dont_overwrite_parameters,
     # check_estimators_fit_returns_self, check_fit_idempotent, check_estimators_pickle,
     # check_dict_unchanged, check_methods_subset_invariance and
-    # check_methods_sample_order_invariance, on Texture records.
-    train, test = _textures(5, seed=1), _textures(4, seed=2)
+    # check_methods_sample_order_invariance, on PatternRecord records.
+    train, test = _records(5, seed=1), _records(4, seed=2)
     est = cls()
     params = joblib.hash(est.get_params())
     attrs_before = set(vars(est))
@@ -472,12 +471,13 @@ def test_sklearn_rules_on_records(cls):
 def test_unseen_ranges_and_empty_h1(cls):
     # Bars beyond the learned grid are clipped by the grid, not an error; an empty H1 diagram
     # gives zeros where H1 has nothing to count.
-    train = _textures(4, seed=3, max_scale=2.0)
+    train = _records(4, seed=3, max_scale=2.0)
     est = cls().fit(train)
     names = est.get_feature_names_out()
-    far = Texture(_diagrams([0.1, 3.0, 7.0], [[0.1, 0.2], [4.0, 9.0], [1.0, 6.0]], max_scale=9.0))
-    empty = Texture(_diagrams([1.0, 1.0, 1.1], []))
-    nothing = Texture(_diagrams([], []))
+    far = PatternRecord(_diagrams([0.1, 3.0, 7.0], [[0.1, 0.2], [4.0, 9.0], [1.0, 6.0]],
+                                  max_scale=9.0))
+    empty = PatternRecord(_diagrams([1.0, 1.0, 1.1], []))
+    nothing = PatternRecord(_diagrams([], []))
     out = est.transform([far, empty, nothing])
     assert out.shape == (3, len(names)) and np.all(np.isfinite(out))
     h1_columns = [i for i, n in enumerate(names)
@@ -486,7 +486,7 @@ def test_unseen_ranges_and_empty_h1(cls):
 
 
 def test_bad_input_gives_clear_errors():
-    records = _textures(2)
+    records = _records(2)
     with pytest.raises(TopoclassError, match="list"):
         BarcodeStatistics().fit(np.zeros((3, 4)))
     with pytest.raises(TopoclassError, match="wrap it in a list"):
@@ -510,7 +510,7 @@ def test_bad_input_gives_clear_errors():
 
 def test_feature_sets_names_shapes_and_params():
     assert set(FEATURE_SETS) == {"two-bar", "order", "topology", "all"}
-    train, test = _textures(6, seed=4), _textures(3, seed=5)
+    train, test = _records(6, seed=4), _records(3, seed=5)
     widths = {}
     for name in FEATURE_SETS:
         union = make_features(name).fit(train)
@@ -541,7 +541,7 @@ def test_feature_sets_names_shapes_and_params():
 
 def test_feature_union_in_a_cross_validated_pipeline():
     # scikit-learn's cross_val_score indexes the list of records; the union must survive that.
-    records = _textures(12, seed=6)
+    records = _records(12, seed=6)
     y = np.array([0, 1] * 6)
     model = make_pipeline(make_features("all"), StandardScaler(), LogisticRegression())
     scores = cross_val_score(model, records, y, cv=3)
@@ -551,8 +551,8 @@ def test_feature_union_in_a_cross_validated_pipeline():
 def test_acquisition_context_gives_spacing_in_pixels_and_site_density():
     from topoclass.vectorize import AcquisitionContext
 
-    records = [Texture(_diagrams(spacing=12.5), {"density_per_spacing2": 1.15}),
-               Texture(_diagrams(spacing=30.0), {})]
+    records = [PatternRecord(_diagrams(spacing=12.5), {"density_per_spacing2": 1.15}),
+               PatternRecord(_diagrams(spacing=30.0), {})]
     values = AcquisitionContext().fit(records).transform(records)
     np.testing.assert_array_equal(values[0], [12.5, 1.15])
     assert values[1, 0] == 30.0 and np.isnan(values[1, 1])

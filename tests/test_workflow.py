@@ -13,9 +13,10 @@ import pytest
 import skimage.data
 import skimage.io
 
+from topoclass.features import FeatureSettings
 from topoclass.images import collect_image_paths
 from topoclass.scoring import read_scores, score_images
-from topoclass.workflow import feature_settings_of, run_demo, train_from_labels
+from topoclass.workflow import run_demo, train_from_labels
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -59,7 +60,7 @@ def test_photo_of_something_else_is_flagged_unfamiliar(demo, tmp_path):
         paths.append(path)
     out = tmp_path / "scores.csv"
     score_images(demo.training.model, paths, out,
-                 settings=feature_settings_of(demo.training.model), cache_dir="")
+                 settings=FeatureSettings.from_model(demo.training.model), cache_dir="")
     rows = {Path(r["image"]).stem: r for r in read_scores(out)}
     # Either no lattice is found at all (an error row saying so) or the image is flagged.
     assert rows["camera"]["status"] == "ok" and rows["camera"]["unfamiliar"] == "yes"

@@ -171,17 +171,17 @@ def score(
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
 
+    from topoclass.features import FeatureSettings
     from topoclass.images import collect_image_paths
     from topoclass.model import load_model
     from topoclass.scoring import score_images, summary_text
-    from topoclass.workflow import feature_settings_of
 
     trained = load_model(model_dir)
     paths = collect_image_paths(inputs)
     if not paths:
         raise TopoclassError(f"no images found in {', '.join(map(str, inputs))}; give image "
                              "files, folders holding .png/.jpg/.tif files, or a list file")
-    settings = feature_settings_of(trained)
+    settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,

@@ -1,10 +1,10 @@
-"""Image files → per-image :class:`~topoclass.vectorize.Texture` records, cached and in parallel.
+"""Image files → per-image :class:`~topoclass.records.PatternRecord`s, cached and in parallel.
 
 Stage 5 of the pipeline. Each micrograph is read, its sites found, its persistence diagrams and
 order measures computed once; the result is cached on disk, keyed by the file's content hash,
 the settings that shaped it and the package version, so a changed setting recomputes and an
 unchanged one never does. One bad image never stops a batch: it comes back as a failed
-:class:`TextureResult` with a one-line message.
+:class:`RecordResult` with a one-line message.
 """
 
 from __future__ import annotations
@@ -22,13 +22,14 @@ from pathlib import Path
 import numpy as np
 
 from topoclass import __version__
+from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
 from topoclass.errors import TopoclassError
 from topoclass.images import Micrograph, read_micrograph
 from topoclass.order import order_measures
 from topoclass.persistence import Diagrams, pattern_persistence
+from topoclass.records import PatternRecord
 from topoclass.sites import SitePattern, find_sites
-from topoclass.vectorize import Texture
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
 _CACHE_LAYOUT = 2
@@ -36,7 +37,7 @@ _CACHE_LAYOUT = 2
 
 @dataclass(frozen=True)
 class FeatureSettings:
-    """Everything that shapes a :class:`Texture`; part of the cache key.
+    """Everything that shapes a :class:`PatternRecord`; part of the cache key.
 
     Parameters
     ----------
@@ -56,7 +57,7 @@ class FeatureSettings:
     max_pixels: int = 100_000_000
 
     def key(self) -> str:
-        """A short stable hash of what shapes a texture, the package version and cache layout.
+        """A short stable hash of what shapes a record, the package version and cache layout.
 
         ``max_pixels`` is left out: it decides whether an image is read, not what comes out.
         """
@@ -67,20 +68,31 @@ class FeatureSettings:
         )
         return hashlib.sha256(payload.encode()).hexdigest()[:16]
 
+    @classmethod
+    def from_model(cls, model) -> FeatureSettings:
+        """The settings a trained model was made with (defaults for a model or None without).
+
+        The one place that reads them: scoring, the report and the workflow all call this, so
+        an image is always measured as the model's training images were.
+        """
+        stored = dict(getattr(model, "settings", None) or {}).get("features", {}) or {}
+        known = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in dict(stored).items() if k in known})
+
 
 @dataclass(frozen=True)
-class TextureResult:
-    """The outcome for one image: a texture, or the reason there is none."""
+class RecordResult:
+    """The outcome for one image: a record, or the reason there is none."""
 
     path: Path
     sha256: str | None
-    texture: Texture | None
+    record: PatternRecord | None
     error: str | None = None
     notes: tuple[str, ...] = ()
 
     @property
     def ok(self) -> bool:
-        return self.texture is not None
+        return self.record is not None
 
 
 def default_cache_dir() -> Path:
@@ -91,22 +103,13 @@ def default_cache_dir() -> Path:
     return Path(base) / "topoclass"
 
 
-def file_sha256(path: str | Path) -> str:
-    """SHA-256 of a file's bytes, read in chunks."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
 @dataclass(frozen=True)
 class ImageMeasurement:
-    """Every stage's output for one micrograph: the image, its sites and its texture."""
+    """Every stage's output for one micrograph: the image, its sites and its record."""
 
     micrograph: Micrograph
     pattern: SitePattern
-    texture: Texture
+    record: PatternRecord
 
 
 def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> ImageMeasurement:
@@ -126,16 +129,16 @@ def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> 
         micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=str(path)
     )
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
-    texture = Texture(diagrams=diagrams, order=order_measures(pattern), source=str(path))
-    return ImageMeasurement(micrograph, pattern, texture)
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path))
+    return ImageMeasurement(micrograph, pattern, record)
 
 
-def extract_texture(path: str | Path, settings: FeatureSettings | None = None) -> Texture:
-    """The :class:`Texture` of one micrograph (no cache); see :func:`measure_image`."""
-    return measure_image(path, settings).texture
+def measure_pattern(path: str | Path, settings: FeatureSettings | None = None) -> PatternRecord:
+    """The :class:`PatternRecord` of one micrograph (no cache); see :func:`measure_image`."""
+    return measure_image(path, settings).record
 
 
-def compute_textures(
+def measure_patterns(
     paths: Sequence[str | Path],
     settings: FeatureSettings | None = None,
     *,
@@ -143,17 +146,17 @@ def compute_textures(
     jobs: int = 1,
     progress: bool = False,
     description: str = "features",
-) -> list[TextureResult]:
-    """Textures of many images, in input order; see :func:`iter_textures`."""
+) -> list[RecordResult]:
+    """Pattern records of many images, in input order; see :func:`iter_records`."""
     return list(
-        iter_textures(
+        iter_records(
             paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
             description=description,
         )
     )
 
 
-def iter_textures(
+def iter_records(
     paths: Sequence[str | Path],
     settings: FeatureSettings | None = None,
     *,
@@ -161,8 +164,8 @@ def iter_textures(
     jobs: int = 1,
     progress: bool = False,
     description: str = "features",
-) -> Iterator[TextureResult]:
-    """Yield a :class:`TextureResult` per path, in input order, as images finish.
+) -> Iterator[RecordResult]:
+    """Yield a :class:`RecordResult` per path, in input order, as images finish.
 
     Parameters
     ----------
@@ -183,10 +186,10 @@ def iter_textures(
     paths = [Path(p) for p in paths]
     if cache_dir is None:
         cache_dir = default_cache_dir()
-    cache = _TextureCache(Path(cache_dir), settings) if cache_dir != "" else None
+    cache = _RecordCache(Path(cache_dir), settings) if cache_dir != "" else None
     work = _Worker(settings, cache)
     if jobs == 1 or len(paths) <= 1:
-        results: Iterator[TextureResult] = (work(p) for p in paths)
+        results: Iterator[RecordResult] = (work(p) for p in paths)
     else:
         from joblib import Parallel, delayed
 
@@ -208,84 +211,84 @@ def iter_textures(
 class _Worker:
     """Picklable callable so joblib can ship it to worker processes."""
 
-    def __init__(self, settings: FeatureSettings, cache: _TextureCache | None):
+    def __init__(self, settings: FeatureSettings, cache: _RecordCache | None):
         self.settings = settings
         self.cache = cache
 
-    def __call__(self, path: Path) -> TextureResult:
+    def __call__(self, path: Path) -> RecordResult:
         try:
             sha = file_sha256(path)
         except OSError as exc:
             reason = exc.strerror or type(exc).__name__
-            return TextureResult(path, None, None, f"{path}: cannot read the file ({reason}); "
+            return RecordResult(path, None, None, f"{path}: cannot read the file ({reason}); "
                                  "check that it exists and is readable")
         if self.cache is not None:
             hit = self.cache.get(sha, path)
             if hit is not None:
-                texture, notes = hit
-                return TextureResult(path, sha, texture, notes=notes)
+                record, notes = hit
+                return RecordResult(path, sha, record, notes=notes)
         # Reader warnings (multi-page TIFF, non-finite pixels) belong in the image's own row,
         # not on a terminal shared by a whole batch.
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             try:
-                texture = extract_texture(path, self.settings)
+                record = measure_pattern(path, self.settings)
             except TopoclassError as exc:
-                return TextureResult(path, sha, None, " ".join(str(exc).split()))
+                return RecordResult(path, sha, None, " ".join(str(exc).split()))
             except Exception as exc:  # a bug or an unforeseen file: report it, keep going
                 message = f"{path}: unexpected {type(exc).__name__}: {exc}"
-                return TextureResult(path, sha, None, " ".join(message.split()))
+                return RecordResult(path, sha, None, " ".join(message.split()))
         notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
         if self.cache is not None:
-            self.cache.put(sha, texture, notes)
-        return TextureResult(path, sha, texture, notes=notes)
+            self.cache.put(sha, record, notes)
+        return RecordResult(path, sha, record, notes=notes)
 
 
-def _limited(work: Callable, path: Path) -> TextureResult:
+def _limited(work: Callable, path: Path) -> RecordResult:
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1):
         return work(path)
 
 
-class _TextureCache:
+class _RecordCache:
     """One ``.npz`` file per (content hash, settings key); loaded without pickle."""
 
     def __init__(self, root: Path, settings: FeatureSettings):
         self.folder = root / settings.key()
 
-    def get(self, sha: str, path: Path) -> tuple[Texture, tuple[str, ...]] | None:
+    def get(self, sha: str, path: Path) -> tuple[PatternRecord, tuple[str, ...]] | None:
         file = self.folder / f"{sha}.npz"
         if not file.exists():
             return None
         try:
             with np.load(file, allow_pickle=False) as data:
                 notes = tuple(str(n) for n in data["notes"])
-                return _texture_from_arrays(data, str(path)), notes
+                return _record_from_arrays(data, str(path)), notes
         except Exception:  # a damaged entry is recomputed, never trusted
             return None
 
-    def put(self, sha: str, texture: Texture, notes: tuple[str, ...] = ()) -> None:
+    def put(self, sha: str, record: PatternRecord, notes: tuple[str, ...] = ()) -> None:
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
             # Write to a temporary file and rename, so a concurrent reader never sees half a file.
             fd, tmp = tempfile.mkstemp(dir=self.folder, suffix=".npz.tmp")
             with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, notes=np.array(notes, dtype=str), **_texture_to_arrays(texture))
+                np.savez(fh, notes=np.array(notes, dtype=str), **_record_to_arrays(record))
             os.replace(tmp, self.folder / f"{sha}.npz")
         except OSError:
             pass  # the cache is an optimisation; a read-only disk must not fail the batch
 
 
-def _texture_to_arrays(texture: Texture) -> dict[str, np.ndarray]:
-    arrays = {f"d_{k}": v for k, v in texture.diagrams.to_dict().items()}
-    keys = list(texture.order)
+def _record_to_arrays(record: PatternRecord) -> dict[str, np.ndarray]:
+    arrays = {f"d_{k}": v for k, v in record.diagrams.to_dict().items()}
+    keys = list(record.order)
     arrays["order_keys"] = np.array(keys, dtype=str)
-    arrays["order_values"] = np.array([texture.order[k] for k in keys], dtype=float)
+    arrays["order_values"] = np.array([record.order[k] for k in keys], dtype=float)
     return arrays
 
 
-def _texture_from_arrays(data, source: str) -> Texture:
+def _record_from_arrays(data, source: str) -> PatternRecord:
     diagrams = Diagrams.from_dict({k[2:]: data[k] for k in data.files if k.startswith("d_")})
     order = dict(zip(data["order_keys"].tolist(), data["order_values"].tolist(), strict=True))
-    return Texture(diagrams=diagrams, order=order, source=source)
+    return PatternRecord(diagrams=diagrams, order=order, source=source)

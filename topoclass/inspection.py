@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.features import FeatureSettings, ImageMeasurement, measure_image
-from topoclass.vectorize import barcode_summary
+from topoclass.records import barcode_summary
 
 #: Keys of :func:`summarise` beyond the image and site counts, in print order.
 SUMMARY_MEASURES = (
@@ -40,7 +40,7 @@ def inspect_image(
     pixel_size_nm: float | None = None,
     settings: FeatureSettings | None = None,
 ) -> dict:
-    """Find the sites of one micrograph and summarise its texture.
+    """Find the sites of one micrograph and summarise its record.
 
     Returns a JSON-ready dict (see :func:`summarise`); with ``out`` it also writes
     ``sites.csv`` (``x,y,border``) there and lists the files written under ``outputs``.
@@ -56,8 +56,8 @@ def inspect_image(
 
 def summarise(measurement: ImageMeasurement) -> dict:
     """JSON-ready summary: sites, spacing, polarity, persistence (spacing units) and order."""
-    pattern, texture = measurement.pattern, measurement.texture
-    bars = barcode_summary(texture.diagrams)
+    pattern, record = measurement.pattern, measurement.record
+    bars = barcode_summary(record.diagrams)
     summary: dict = {
         "image": str(measurement.micrograph.source),
         "n_sites": pattern.n_sites,
@@ -67,11 +67,11 @@ def summarise(measurement: ImageMeasurement) -> dict:
         "pixel_size_nm": pattern.pixel_size_nm,
         "polarity": pattern.polarity,
     }
-    merged = {**bars, **texture.order}
+    merged = {**bars, **record.order}
     for key in SUMMARY_MEASURES:
         if key in merged:
             summary[key] = _json_number(merged[key])
-    for key, value in texture.order.items():
+    for key, value in record.order.items():
         summary.setdefault(key, _json_number(value))
     summary["h1_count"] = int(bars["h1_count"])
     summary["h1_truncated_count"] = int(bars["h1_truncated_count"])
@@ -98,7 +98,7 @@ def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Pat
     summary_json.write_text(json.dumps(summarise(measurement), indent=2) + "\n",
                             encoding="utf-8")
     pictures = write_inspection_figures(measurement.micrograph.image, pattern,
-                                        measurement.texture.diagrams, out)
+                                        measurement.record.diagrams, out)
     return [sites_csv, summary_json, *pictures]
 
 

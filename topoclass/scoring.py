@@ -21,8 +21,8 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.errors import TopoclassError
-from topoclass.features import FeatureSettings, TextureResult, file_sha256, iter_textures
-from topoclass.vectorize import barcode_summary
+from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
+from topoclass.records import barcode_summary
 
 CAUTION = (
     "Probabilities are estimates learned from the labelled training set. Re-validate the model "
@@ -105,13 +105,13 @@ def score_images(
     overwrite : bool
         Replace an existing ``out``.
     cache_dir, progress
-        As in :func:`topoclass.features.iter_textures`.
+        As in :func:`topoclass.features.iter_records`.
     """
     out = Path(out)
     classes = [str(c) for c in model.classes]
     columns = score_columns(classes)
     if settings is None:
-        settings = getattr(model, "feature_settings", None) or FeatureSettings()
+        settings = FeatureSettings.from_model(model)
     summary = ScoreSummary(out=out)
     if out.exists() and not (resume or overwrite):
         raise TopoclassError(
@@ -134,7 +134,7 @@ def score_images(
                 _drop_rows(out, columns, str(p))  # the file changed: its old row is stale
             todo.append(p)
         with open(out, "a", newline="", encoding="utf-8") as fh:
-            results = iter_textures(
+            results = iter_records(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
                 description="scoring",
             )
@@ -195,7 +195,7 @@ def _chunks(results, size: int, seconds: float):
         yield chunk
 
 
-def _score_rows(model, classes: list[str], results: list[TextureResult]) -> list[dict]:
+def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[dict]:
     """One row per result, in order; the measured images are predicted in one call."""
     rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
     ok = [i for i, r in enumerate(results) if r.ok]
@@ -204,9 +204,9 @@ def _score_rows(model, classes: list[str], results: list[TextureResult]) -> list
             rows[i].update(status="error", message=r.error or "unknown error")
     if not ok:
         return rows
-    textures = [results[i].texture for i in ok]
+    records = [results[i].record for i in ok]
     try:
-        proba, unfamiliarity, reasons = model.assess(textures)
+        proba, unfamiliarity, reasons = model.assess(records)
         proba = np.asarray(proba, dtype=float)
         unfamiliarity = np.asarray(unfamiliarity, dtype=float)
     except Exception as exc:  # keep the batch going; the rows say what happened
@@ -219,15 +219,15 @@ def _score_rows(model, classes: list[str], results: list[TextureResult]) -> list
     return rows
 
 
-def _ok_row(classes, result: TextureResult, proba, unfamiliarity: float, reasons) -> dict:
-    texture = result.texture
+def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons) -> dict:
+    record = result.record
     best = int(np.argmax(proba))
     row: dict[str, object] = {"status": "ok", "predicted": classes[best],
                               "confidence": proba[best]}
     row.update({f"p_{c}": p for c, p in zip(classes, proba, strict=True)})
     row["unfamiliar"] = "yes" if unfamiliarity > 1.0 else "no"
-    measures = {**barcode_summary(texture.diagrams), **texture.order}
-    measures["spacing_px"] = texture.diagrams.spacing
+    measures = {**barcode_summary(record.diagrams), **record.order}
+    measures["spacing_px"] = record.diagrams.spacing
     for key in MEASURE_COLUMNS:
         if key in measures:
             row[key] = measures[key]

@@ -163,6 +163,23 @@ _RING_CLARITY = 4.0  # a spectral ring stands this many times above the band's m
 _RING_MAX_WIDTH = 1.0  # full width at half height of a ring, relative to its radius
 
 
+def circumcircles(triangles: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Centres and radii of the circumcircles of triangles given as ``(n, 3, 2)`` corners.
+
+    A degenerate (collinear) triangle gets a NaN centre and radius 0.
+    """
+    a, b, c = triangles[:, 0], triangles[:, 1], triangles[:, 2]
+    bx, by = b[:, 0] - a[:, 0], b[:, 1] - a[:, 1]
+    cx, cy = c[:, 0] - a[:, 0], c[:, 1] - a[:, 1]
+    d = 2 * (bx * cy - by * cx)
+    d = np.where(np.abs(d) < 1e-12, np.nan, d)
+    ux = (cy * (bx**2 + by**2) - by * (cx**2 + cy**2)) / d
+    uy = (bx * (cx**2 + cy**2) - cx * (bx**2 + by**2)) / d
+    centres = np.column_stack([ux + a[:, 0], uy + a[:, 1]])
+    radii = np.nan_to_num(np.hypot(ux, uy), nan=0.0)
+    return centres, radii
+
+
 def estimate_spacing(image: np.ndarray, *, source: str | None = None) -> float:
     """Characteristic nearest-neighbour spacing of a lattice pattern, in pixels.
 

@@ -21,6 +21,7 @@ from scipy.spatial import Delaunay, cKDTree
 
 from topoclass._progress import progress_bar
 from topoclass.labels import write_labels
+from topoclass.sites import circumcircles
 
 KINDS = ("ordered", "vacancies", "grains", "disordered")
 # Pore spacing of oxalic-acid anodised alumina (about 100 nm at 40 V: common practice); it sets
@@ -721,7 +722,7 @@ def _holes(xy: np.ndarray, mobile: np.ndarray, spacing: float) -> np.ndarray:
         return np.empty((0, 2))
     sub, sub_mobile = xy[zone], mobile[zone]
     tri = Delaunay(sub)
-    centre, radius = _circumcircles(sub[tri.simplices])
+    centre, radius = circumcircles(sub[tri.simplices])
     big = (radius > 0.8 * spacing) & sub_mobile[tri.simplices].any(axis=1)
     # Triangles on the hull of the zone are thin slivers, not holes.
     big &= radius < 3.0 * spacing
@@ -732,17 +733,6 @@ def _holes(xy: np.ndarray, mobile: np.ndarray, spacing: float) -> np.ndarray:
         drop[pairs.max(axis=1)] = True
         centre = centre[~drop]
     return centre
-
-
-def _circumcircles(p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    a, b, c = p[:, 0], p[:, 1], p[:, 2]
-    ab, ac = b - a, c - a
-    den = 2.0 * (ab[:, 0] * ac[:, 1] - ab[:, 1] * ac[:, 0])
-    den = np.where(np.abs(den) < 1e-12, 1e-12, den)
-    ab2, ac2 = (ab**2).sum(1), (ac**2).sum(1)
-    ux = (ac[:, 1] * ab2 - ab[:, 1] * ac2) / den
-    uy = (ab[:, 0] * ac2 - ac[:, 0] * ab2) / den
-    return a + np.column_stack([ux, uy]), np.hypot(ux, uy)
 
 
 def _spread_points(n: int, shape, rng) -> np.ndarray:

@@ -1,12 +1,12 @@
 """Turn per-image records into feature vectors: scikit-learn transformers over lists of records.
 
-Stage 4 of the pipeline. Each micrograph is summarised by a :class:`Texture` (its persistence
+Stage 4 of the pipeline. Each micrograph is summarised by a :class:`PatternRecord` (its persistence
 :class:`~topoclass.persistence.Diagrams` and its classic order measures); the transformers here
 map a sequence of such records to a 2-D float array, one row per record.
 
 Conventions shared by every transformer in this module
 ------------------------------------------------------
-* ``X`` is a sequence of :class:`Texture` records (a list, tuple or 1-D object array). The
+* ``X`` is a sequence of :class:`PatternRecord` records (a list, tuple or 1-D object array). The
   diagram-based transformers also accept bare ``Diagrams`` records.
 * ``__init__`` stores parameters only; ``fit`` learns grids and ranges (attributes ending in
   ``_``); ``transform`` is pure and checks that the transformer is fitted.
@@ -25,8 +25,7 @@ Conventions shared by every transformer in this module
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Mapping
 
 import numpy as np
 from scipy.special import ndtr
@@ -37,6 +36,13 @@ from sklearn.utils.validation import check_is_fitted
 from topoclass.errors import TopoclassError
 from topoclass.order import ORDER_MEASURE_KEYS
 from topoclass.persistence import Diagrams
+from topoclass.records import (
+    PatternRecord,
+    bar_lengths,
+    barcode_summary,
+    bars_of,
+    sites_counted,
+)
 
 __all__ = [
     "DEFAULT_ORDER_KEYS",
@@ -45,11 +51,9 @@ __all__ = [
     "BettiCurveFeatures",
     "FeatureSettingsError",
     "OrderMeasureFeatures",
-    "PerfectGridResiduals",
+    "IdealLatticeResiduals",
     "PersistenceImageFeatures",
     "PersistenceLandscapeFeatures",
-    "Texture",
-    "barcode_summary",
     "make_features",
 ]
 
@@ -69,81 +73,6 @@ FEATURE_SETS: dict[str, str] = {
 
 class FeatureSettingsError(TopoclassError, ValueError):
     """A feature set or transformer parameter is invalid, or a record lacks a needed value."""
-
-
-@dataclass(frozen=True)
-class Texture:
-    """What the pipeline knows about one micrograph: its diagrams and its classic order measures.
-
-    Attributes
-    ----------
-    diagrams : Diagrams
-        H0/H1 persistence of the site pattern, in spacing units.
-    order : mapping of str to float
-        Classic order measures (``psi6_global``, ``defect_fraction``, ...).
-    source : str or None
-        Path of the image file, for messages.
-    """
-
-    diagrams: Diagrams
-    order: Mapping[str, float] = field(default_factory=dict)
-    source: str | None = None
-
-
-def barcode_summary(
-    diagrams: Diagrams, quantiles: Sequence[float] = (0.5, 0.9)
-) -> dict[str, float]:
-    """Summary statistics of the H0 and H1 bar lengths of one record.
-
-    Parameters
-    ----------
-    diagrams : Diagrams
-        The persistence diagrams (spacing units).
-    quantiles : sequence of float in [0, 1]
-        Quantiles of the bar lengths to report.
-
-    Returns
-    -------
-    dict
-        For ``d`` in 0, 1: ``hd_count``, ``hd_count_per_site``, ``hd_length_sum``,
-        ``hd_length_sum_per_site``, ``hd_length_mean``, ``hd_length_variance`` (population
-        variance), ``hd_length_max``, ``hd_length_q<q>``, ``hd_entropy`` (persistent entropy
-        ``E = -sum p log p`` with ``p = length / total length``, natural log) and
-        ``hd_entropy_normalised`` (``E / log n`` for ``n`` bars, Pielou's evenness: 1 for equal
-        bars, and unlike ``E`` it does not grow with the field of view); then
-        ``h1_truncated_count``, ``h1_truncated_per_site``, ``n_sites`` (``diagrams.n_sites`` when
-        the record carries it, else ``len(h0) + 1``) and ``n_sites_counted`` (the number of
-        sites the per-site values divide by; see the module notes). H0 covers the finite
-        bars only (the essential class has no length). Statistics of an empty diagram are 0.
-    """
-    n_sites = _n_sites(diagrams)
-    out: dict[str, float] = {}
-    for dim in (0, 1):
-        lengths = _lengths(diagrams, dim)
-        total = float(lengths.sum())
-        p = f"h{dim}_"
-        out[p + "count"] = float(lengths.size)
-        out[p + "count_per_site"] = lengths.size / n_sites
-        out[p + "length_sum"] = total
-        out[p + "length_sum_per_site"] = total / n_sites
-        if lengths.size:
-            out[p + "length_mean"] = float(lengths.mean())
-            out[p + "length_variance"] = float(lengths.var())
-            out[p + "length_max"] = float(lengths.max())
-            qs = np.quantile(lengths, np.asarray(quantiles, dtype=float))
-        else:
-            out[p + "length_mean"] = out[p + "length_variance"] = out[p + "length_max"] = 0.0
-            qs = np.zeros(len(quantiles))
-        for q, value in zip(quantiles, qs, strict=True):
-            out[f"{p}length_q{float(q):g}"] = float(value)
-        out[p + "entropy"] = entropy = _persistent_entropy(lengths)
-        out[p + "entropy_normalised"] = entropy / np.log(lengths.size) if lengths.size > 1 else 0.0
-    truncated = int(np.count_nonzero(_truncated(diagrams)))
-    out["h1_truncated_count"] = float(truncated)
-    out["h1_truncated_per_site"] = truncated / n_sites
-    out["n_sites"] = float(_n_sites(diagrams, interior=False))
-    out["n_sites_counted"] = float(n_sites)
-    return out
 
 
 class _RecordTransformer(TransformerMixin, BaseEstimator):
@@ -228,7 +157,7 @@ class PersistenceImageFeatures(_RecordTransformer):
         self.persistence_edges_ = {}
         names: list[str] = []
         for dim in dims:
-            bars = np.vstack([_bars(d, dim) for d in diagrams])
+            bars = np.vstack([bars_of(d, dim) for d in diagrams])
             pers = bars[:, 1] - bars[:, 0]
             top = (float(pers.max()) if pers.size else fallback) + sigma
             self.persistence_edges_[dim] = np.linspace(0.0, top, n_pers + 1)
@@ -255,9 +184,9 @@ class PersistenceImageFeatures(_RecordTransformer):
         rows = []
         for d in diagrams:
             parts = []
-            scale = 1.0 / _n_sites(d) if self.per_site else 1.0
+            scale = 1.0 / sites_counted(d) if self.per_site else 1.0
             for dim in sorted(self.persistence_edges_):
-                bars = _bars(d, dim)
+                bars = bars_of(d, dim)
                 pers = bars[:, 1] - bars[:, 0]
                 weight = scale * pers**self.weight_power
                 p_mass = _pixel_mass(pers, self.persistence_edges_[dim], sigma)
@@ -313,7 +242,7 @@ class PersistenceLandscapeFeatures(_RecordTransformer):
         self.grids_ = {}
         names: list[str] = []
         for dim in _check_dims(self.dims):
-            bars = np.vstack([_bars(d, dim) for d in diagrams])
+            bars = np.vstack([bars_of(d, dim) for d in diagrams])
             if bars.shape[0]:
                 low, high = float(bars[:, 0].min()), float(bars[:, 1].max())
             else:
@@ -333,7 +262,7 @@ class PersistenceLandscapeFeatures(_RecordTransformer):
         k = int(self.n_landscapes)
         rows = []
         for d in diagrams:
-            parts = [_landscapes(_bars(d, dim), self.grids_[dim], k).ravel()
+            parts = [_landscapes(bars_of(d, dim), self.grids_[dim], k).ravel()
                      for dim in sorted(self.grids_)]
             rows.append(np.concatenate(parts))
         return self._output(rows)
@@ -395,10 +324,10 @@ class BettiCurveFeatures(_RecordTransformer):
         diagrams = _diagrams_of(X, type(self).__name__)
         rows = []
         for d in diagrams:
-            scale = 1.0 / _n_sites(d) if self.per_site else 1.0
+            scale = 1.0 / sites_counted(d) if self.per_site else 1.0
             parts = []
             for dim in self.dims_:
-                curve = _betti(_bars(d, dim), self.grid_) + (1.0 if dim == 0 else 0.0)
+                curve = _betti(bars_of(d, dim), self.grid_) + (1.0 if dim == 0 else 0.0)
                 parts.append(scale * curve)
             rows.append(np.concatenate(parts))
         return self._output(rows)
@@ -461,7 +390,7 @@ class BarcodeStatistics(_RecordTransformer):
         return self._output(rows)
 
 
-class PerfectGridResiduals(_RecordTransformer):
+class IdealLatticeResiduals(_RecordTransformer):
     """The two barcode measures a perfect hexagonal grid drives to zero.
 
     ``h0_length_variance``: on a perfect grid every site joins its neighbours at exactly one
@@ -490,10 +419,10 @@ class PerfectGridResiduals(_RecordTransformer):
         check_is_fitted(self, "feature_names_out_")
         rows = []
         for d in _diagrams_of(X, type(self).__name__):
-            h0 = _lengths(d, 0)
-            h1_sum = float(_lengths(d, 1).sum())
+            h0 = bar_lengths(d, 0)
+            h1_sum = float(bar_lengths(d, 1).sum())
             if self.per_site:
-                h1_sum /= _n_sites(d)
+                h1_sum /= sites_counted(d)
             rows.append(np.array([h0.var() if h0.size else 0.0, h1_sum]))
         return self._output(rows)
 
@@ -528,7 +457,7 @@ class OrderMeasureFeatures(_RecordTransformer):
             )
         if len(set(keys)) != len(keys):
             raise FeatureSettingsError(f"OrderMeasureFeatures: keys repeat a name: {keys}")
-        for i, record in enumerate(_textures_of(X)):
+        for i, record in enumerate(_pattern_records_of(X)):
             _check_order_keys(record, i, keys)
         self.feature_names_out_ = keys
         return self
@@ -537,7 +466,7 @@ class OrderMeasureFeatures(_RecordTransformer):
         """The selected order measures of each record."""
         check_is_fitted(self, "feature_names_out_")
         rows = []
-        for i, record in enumerate(_textures_of(X)):
+        for i, record in enumerate(_pattern_records_of(X)):
             _check_order_keys(record, i, self.feature_names_out_)
             rows.append(np.array([_as_float(record.order[k]) for k in self.feature_names_out_]))
         return self._output(rows)
@@ -557,7 +486,7 @@ class AcquisitionContext(_RecordTransformer):
     """
 
     def fit(self, X, y=None):
-        _textures_of(X)
+        _pattern_records_of(X)
         self.feature_names_out_ = ["spacing_px", "site_density"]
         return self
 
@@ -565,7 +494,7 @@ class AcquisitionContext(_RecordTransformer):
         check_is_fitted(self, "feature_names_out_")
         rows = [np.array([float(t.diagrams.spacing),
                           _as_float(t.order.get("density_per_spacing2", np.nan))])
-                for t in _textures_of(X)]
+                for t in _pattern_records_of(X)]
         return self._output(rows)
 
 
@@ -578,7 +507,7 @@ def make_features(name: str = "all", **params) -> FeatureUnion:
         One of :data:`FEATURE_SETS`: ``"two-bar"``, ``"order"``, ``"topology"``, ``"all"``.
     **params
         Parameters of the parts, scikit-learn style ``<part>__<parameter>``; the parts are
-        ``grid_residuals`` (two-bar), ``order``, and ``pimage``, ``landscape``, ``betti``,
+        ``lattice_residuals`` (two-bar), ``order``, and ``pimage``, ``landscape``, ``betti``,
         ``barcode`` (topology). Example: ``make_features("all", pimage__sigma=0.05)``.
 
     Returns
@@ -587,7 +516,7 @@ def make_features(name: str = "all", **params) -> FeatureUnion:
         Its ``get_feature_names_out`` gives the bare column names (they are unique).
     """
     builders = {
-        "two-bar": lambda: [("grid_residuals", PerfectGridResiduals())],
+        "two-bar": lambda: [("lattice_residuals", IdealLatticeResiduals())],
         "order": lambda: [("order", OrderMeasureFeatures())],
         "topology": _topology_parts,
         "all": lambda: _topology_parts() + [("order", OrderMeasureFeatures())],
@@ -621,19 +550,19 @@ def _topology_parts() -> list[tuple[str, TransformerMixin]]:
 
 
 def _records(X, who: str) -> list:
-    if isinstance(X, (Texture, Diagrams, str, bytes, Mapping)):
-        raise FeatureSettingsError(f"{who}: X must be a list of Texture records, not one "
+    if isinstance(X, (PatternRecord, Diagrams, str, bytes, Mapping)):
+        raise FeatureSettingsError(f"{who}: X must be a list of PatternRecord records, not one "
                                    f"{type(X).__name__}; wrap it in a list")
     if isinstance(X, np.ndarray) and X.ndim != 1:
         raise FeatureSettingsError(
-            f"{who}: X must be a list (or 1-D object array) of Texture records, not a "
-            f"{X.ndim}-D array of shape {X.shape}; build Texture records first"
+            f"{who}: X must be a list (or 1-D object array) of PatternRecord records, not a "
+            f"{X.ndim}-D array of shape {X.shape}; build PatternRecord records first"
         )
     try:
         records = list(X)
     except TypeError:
         raise FeatureSettingsError(
-            f"{who}: X must be a list of Texture records, not {type(X).__name__}"
+            f"{who}: X must be a list of PatternRecord records, not {type(X).__name__}"
         ) from None
     return records
 
@@ -641,33 +570,33 @@ def _records(X, who: str) -> list:
 def _diagrams_of(X, who: str) -> list[Diagrams]:
     out = []
     for i, record in enumerate(_records(X, who)):
-        if isinstance(record, Texture):
+        if isinstance(record, PatternRecord):
             out.append(record.diagrams)
         elif isinstance(record, Diagrams):
             out.append(record)
         else:
             raise FeatureSettingsError(
-                f"{who}: item {i} of X is a {type(record).__name__}, not a Texture record"
+                f"{who}: item {i} of X is a {type(record).__name__}, not a PatternRecord record"
             )
     if not out:
         raise FeatureSettingsError(f"{who}: X holds no records; give at least one image")
     return out
 
 
-def _textures_of(X) -> list[Texture]:
+def _pattern_records_of(X) -> list[PatternRecord]:
     records = _records(X, "OrderMeasureFeatures")
     for i, record in enumerate(records):
-        if not isinstance(record, Texture):
+        if not isinstance(record, PatternRecord):
             raise FeatureSettingsError(
                 f"OrderMeasureFeatures: item {i} of X is a {type(record).__name__}, not a "
-                "Texture record (order measures live in Texture.order)"
+                "PatternRecord record (order measures live in PatternRecord.order)"
             )
     if not records:
         raise FeatureSettingsError("OrderMeasureFeatures: X holds no records")
     return records
 
 
-def _check_order_keys(record: Texture, index: int, keys) -> None:
+def _check_order_keys(record: PatternRecord, index: int, keys) -> None:
     missing = [k for k in keys if k not in record.order]
     if missing:
         where = record.source or f"record {index}"
@@ -680,39 +609,6 @@ def _check_order_keys(record: Texture, index: int, keys) -> None:
 
 def _as_float(value) -> float:
     return np.nan if value is None else float(value)
-
-
-def _bars(diagrams: Diagrams, dim: int) -> np.ndarray:
-    bars = diagrams.h0 if dim == 0 else diagrams.h1
-    return np.asarray(bars, dtype=np.float64).reshape(-1, 2)
-
-
-def _lengths(diagrams: Diagrams, dim: int) -> np.ndarray:
-    bars = _bars(diagrams, dim)
-    return bars[:, 1] - bars[:, 0]
-
-
-def _truncated(diagrams: Diagrams) -> np.ndarray:
-    return np.asarray(diagrams.h1_truncated, dtype=bool).reshape(-1)
-
-
-def _n_sites(diagrams: Diagrams, interior: bool = True) -> int:
-    # The sites the bars are charged to (interior sites when border bars were dropped), then all
-    # sites; a record that carries neither (0 or absent) falls back to len(h0) + 1: each finite
-    # H0 bar is one site merging into another, and one component never dies.
-    for attr in ("n_interior", "n_sites") if interior else ("n_sites",):
-        n = getattr(diagrams, attr, None)
-        if n is not None and int(n) > 0:
-            return int(n)
-    return _bars(diagrams, 0).shape[0] + 1
-
-
-def _persistent_entropy(lengths: np.ndarray) -> float:
-    total = lengths.sum()
-    if lengths.size == 0 or total <= 0:
-        return 0.0
-    p = lengths[lengths > 0] / total
-    return float(-(p * np.log(p)).sum())
 
 
 def _pixel_mass(centres: np.ndarray, edges: np.ndarray, sigma: float) -> np.ndarray:

@@ -1,4 +1,4 @@
-"""The job end to end: label sheet → textures → trained, validated model → scored batch.
+"""The job end to end: label sheet → records → trained, validated model → scored batch.
 
 Use-case functions that string the pipeline stages together; the command line is a shell over
 them, and a notebook can call them the same way.
@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.errors import LabelSheetError, TopoclassError
-from topoclass.features import FeatureSettings, TextureResult, compute_textures
+from topoclass.features import FeatureSettings, RecordResult, measure_patterns
 from topoclass.labels import LabelSet, read_labels
 from topoclass.model import (
     CLASSIFIERS,
@@ -38,7 +38,7 @@ class TrainingRun:
 
     model: TrainedModel
     directory: Path
-    failures: list[TextureResult] = field(default_factory=list)
+    failures: list[RecordResult] = field(default_factory=list)
     comparison: list[dict] | None = None
 
 
@@ -48,28 +48,28 @@ class ValidationRun:
 
     metrics: dict
     report: Path | None
-    failures: list[TextureResult] = field(default_factory=list)
+    failures: list[RecordResult] = field(default_factory=list)
 
 
-def labelled_textures(
+def labelled_records(
     labels: LabelSet,
     settings: FeatureSettings,
     *,
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
-) -> tuple[list, np.ndarray, np.ndarray | None, list[TextureResult]]:
-    """Textures of a label set's images; failed images are left out and returned apart."""
-    results = compute_textures(
+) -> tuple[list, np.ndarray, np.ndarray | None, list[RecordResult]]:
+    """Pattern records of a label set's images; failed images are left out and returned apart."""
+    results = measure_patterns(
         labels.images, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
         description="features",
     )
     keep = [i for i, r in enumerate(results) if r.ok]
     failures = [r for r in results if not r.ok]
-    textures = [results[i].texture for i in keep]
+    records = [results[i].record for i in keep]
     y = np.array([labels.labels[i] for i in keep])
     groups = None if labels.groups is None else np.array([labels.groups[i] for i in keep])
-    return textures, y, groups, failures
+    return records, y, groups, failures
 
 
 def train_from_labels(
@@ -112,7 +112,7 @@ def train_from_labels(
     settings : FeatureSettings, optional
         Site-finding and persistence settings; stored with the model so scoring uses the same.
     jobs, cache_dir, progress
-        As in :func:`topoclass.features.compute_textures`.
+        As in :func:`topoclass.features.measure_patterns`.
     figures : bool
         Also write the cross-validation figures and the permutation importance of the
         features into the model folder (:func:`topoclass.report.write_training_figures`).
@@ -125,7 +125,7 @@ def train_from_labels(
         )
     settings = settings or FeatureSettings()
     labels = read_labels(labels_source, n_folds=cv)
-    textures, y, groups, failures = labelled_textures(
+    records, y, groups, failures = labelled_records(
         labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
     )
     if failures:
@@ -140,12 +140,12 @@ def train_from_labels(
             if clf != classifier
         ]
         model, comparison = select_model(
-            textures, y, groups, candidates=candidates, cv=cv, seed=seed,
+            records, y, groups, candidates=candidates, cv=cv, seed=seed,
             calibration=calibration, progress=progress, context=AcquisitionContext(),
         )
     else:
         model = train_model(
-            textures, y, groups, features=make_features(feature_set),
+            records, y, groups, features=make_features(feature_set),
             feature_set_name=feature_set, classifier=classifier, cv=cv,
             calibration=calibration, seed=seed, progress=progress, context=AcquisitionContext(),
         )
@@ -162,15 +162,8 @@ def train_from_labels(
     if figures:
         from topoclass.report import write_training_figures
 
-        write_training_figures(model, directory, textures, y, seed=seed)
+        write_training_figures(model, directory, records, y, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
-
-
-def feature_settings_of(model: TrainedModel) -> FeatureSettings:
-    """The site-finding and persistence settings a model was trained with."""
-    stored = dict(model.settings.get("features", {}))
-    known = {f.name for f in dataclasses.fields(FeatureSettings)}
-    return FeatureSettings(**{k: v for k, v in stored.items() if k in known})
 
 
 def validate_from_labels(
@@ -189,14 +182,14 @@ def validate_from_labels(
     """
     model = load_model(model_dir)
     labels = read_labels(labels_source)
-    textures, y, _, failures = labelled_textures(
-        labels, feature_settings_of(model), jobs=jobs, cache_dir=cache_dir, progress=progress
+    records, y, _, failures = labelled_records(
+        labels, FeatureSettings.from_model(model), jobs=jobs, cache_dir=cache_dir, progress=progress
     )
-    if not textures:
+    if not records:
         raise LabelSheetError(
             f"{labels.source}: none of its images could be measured; see the messages above"
         )
-    metrics = validate_model(model, textures, y)
+    metrics = validate_model(model, records, y)
     metrics["failed_images"] = [r.error for r in failures]
     out = Path(out) if out is not None else Path(model_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -292,7 +285,7 @@ def run_demo(
     scores = workdir / "scores.csv"
     summary = score_images(
         training.model, collect_image_paths([prod_sheet.parent / "images"]), scores,
-        settings=feature_settings_of(training.model), jobs=jobs, overwrite=True,
+        settings=FeatureSettings.from_model(training.model), jobs=jobs, overwrite=True,
         cache_dir=cache, progress=progress,
     )
     from topoclass.report import write_batch_report

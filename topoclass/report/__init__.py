@@ -1,0 +1,42 @@
+"""See what the model sees: figures (matplotlib, Agg) and the offline HTML batch report.
+
+The last stage of the pipeline; it may read every stage to its left and draws what they made:
+
+* ``figures`` — inspection pictures of one micrograph (sites by Delaunay coordination, the
+  persistence diagram and barcode, the defect map of :mod:`topoclass.defects`) and the
+  training and validation figures (confusion matrix, reliability diagram, per-class bars,
+  feature importance);
+* ``importance`` — permutation importance of a trained model's features;
+* ``batch_page`` — one self-contained HTML page beside a ``scores.csv``.
+"""
+
+from topoclass.defects import DEFECT_COLUMNS, locate_defects, write_defects_csv
+from topoclass.report.batch_page import MAX_DETAILS, MAX_THUMBNAILS, write_batch_report
+from topoclass.report.figures import (
+    CLASS_COLOURS,
+    COORDINATION_COLOURS,
+    DEFECT_COLOURS,
+    diagram_and_barcode_figure,
+    image_to_figure_pixels,
+    plot_confusion,
+    plot_defects,
+    plot_importance,
+    plot_per_class,
+    plot_reliability,
+    plot_sites,
+    save_figure,
+    site_coordination,
+    write_inspection_figures,
+    write_metric_figures,
+    write_training_figures,
+)
+from topoclass.report.importance import feature_family, feature_importance
+
+__all__ = [
+    "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "MAX_DETAILS",
+    "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
+    "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects",
+    "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",
+    "site_coordination", "write_batch_report", "write_defects_csv", "write_inspection_figures",
+    "write_metric_figures", "write_training_figures",
+]

@@ -1,0 +1,411 @@
+"""See what the model sees: the figures (matplotlib, Agg).
+
+The last stage of the pipeline; it may read every stage to its left and draws what they made:
+
+* inspection pictures of one micrograph — the sites coloured by their Delaunay coordination
+  (:func:`plot_sites`), the persistence diagram and barcode (:func:`plot_diagrams`) and the
+  defect map, where the longest H1 bars and the latest H0 merges sit on the image
+  (:func:`locate_defects`, :func:`plot_defects`);
+* training and validation figures — confusion matrix, reliability diagram with bin counts,
+  per-class precision and recall, and permutation importance of the features
+  (:func:`write_metric_figures`, :func:`feature_importance`);
+* one self-contained HTML page beside ``scores.csv`` (:func:`write_batch_report`).
+
+Figures are drawn on :class:`matplotlib.figure.Figure` objects directly (no pyplot state), so
+nothing needs a display and nothing leaks between calls.
+
+Colours
+-------
+Coordination and class colours are picks from the colour-blind-safe palette of Okabe & Ito
+(2008, "Color Universal Design (CUD): how to make figures and presentations that are friendly
+to colorblind people"); heat maps use matplotlib's ``cividis`` (Nuñez, Anderton & Renslow 2018,
+PLoS ONE 13, e0199239), which reads the same with every common colour-vision deficiency.
+"""
+
+from __future__ import annotations
+
+import csv
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+from matplotlib.collections import LineCollection
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+
+from topoclass.defects import locate_defects, write_defects_csv
+from topoclass.persistence import Diagrams
+from topoclass.report.importance import feature_importance
+from topoclass.sites import SitePattern
+
+#: Colour of each coordination class (Okabe & Ito 2008 palette): the six-fold sites of a
+#: perfect triangular lattice in bluish green, the common 5/7 defect pair in vermillion and
+#: blue, and the rarer under- and over-coordinated sites in reddish purple and yellow.
+COORDINATION_COLOURS: dict[str, str] = {
+    "≤4": "#CC79A7",  # reddish purple
+    "5": "#D55E00",  # vermillion
+    "6": "#009E73",  # bluish green
+    "7": "#0072B2",  # blue
+    "≥8": "#F0E442",  # yellow
+}
+
+
+#: Colours of the defect map (Okabe & Ito 2008): H1 loops and H0 merges.
+DEFECT_COLOURS = {"h1": "#D55E00", "h0": "#56B4E9"}  # vermillion, sky blue
+
+
+#: Class colours of the report, in class order (Okabe & Ito 2008; repeated past eight classes).
+CLASS_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00", "#F0E442",
+                 "#000000")
+
+
+_FIGURE_PX = 800  # longest side of the image panel of the inspection pictures
+
+
+def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
+    """The micrograph in grey with every site coloured by its Delaunay coordination.
+
+    Interior sites are filled discs; border sites (``pattern.border``), whose neighbours
+    beyond the frame are missing, are hollow and faded. The image panel fills the top of the
+    figure pixel for pixel up to a scale factor (see :func:`image_to_figure_pixels`); the legend
+    sits in a strip below it.
+    """
+    fig, ax, scale = _image_figure(image, legend_rows=1)
+    coord = site_coordination(pattern)
+    size = _marker_area(pattern.spacing * scale, 0.42)
+    handles = []
+    for label, colour in COORDINATION_COLOURS.items():
+        members = _coordination_class(coord) == label
+        inner, outer = members & ~pattern.border, members & pattern.border
+        if inner.any():
+            ax.scatter(pattern.xy[inner, 0], pattern.xy[inner, 1], s=size, c=colour,
+                       edgecolors="black", linewidths=0.4)
+        if outer.any():
+            ax.scatter(pattern.xy[outer, 0], pattern.xy[outer, 1], s=size, facecolors="none",
+                       edgecolors=colour, linewidths=1.0, alpha=0.6)
+        handles.append(Line2D([], [], ls="", marker="o", markersize=7, markerfacecolor=colour,
+                              markeredgecolor="black", markeredgewidth=0.4,
+                              label=f"{label} ({int(np.count_nonzero(inner))})"))
+    handles.append(Line2D([], [], ls="", marker="o", markersize=7, markerfacecolor="none",
+                          markeredgecolor="grey", label=f"border ({int(pattern.border.sum())})"))
+    fig.legend(handles=handles, loc="lower center", ncols=len(handles), fontsize=8,
+               frameon=False, title="Delaunay neighbours (interior sites)", title_fontsize=8,
+               handletextpad=0.2, columnspacing=0.8)
+    return fig
+
+
+def diagram_and_barcode_figure(diagrams: Diagrams) -> Figure:
+    """Persistence diagram (H0 and H1, spacing units) beside the barcode.
+
+    The diagonal is drawn; H1 bars cut at the radius limit ``max_scale`` are drawn as
+    triangles on the dashed line of the limit.
+    """
+    fig = Figure(figsize=(10, 4.4), dpi=100)
+    # Fixed margins: a layout engine would cost more than the drawing itself here.
+    grid = fig.add_gridspec(2, 2, width_ratios=(1, 1.25), left=0.07, right=0.98, bottom=0.11,
+                            top=0.93, wspace=0.18, hspace=0.08)
+    ax_d = fig.add_subplot(grid[:, 0])
+    ax_h1 = fig.add_subplot(grid[0, 1])
+    ax_h0 = fig.add_subplot(grid[1, 1], sharex=ax_h1)
+    limit = float(diagrams.max_scale)
+    h0, h1, cut = diagrams.h0, diagrams.h1, np.asarray(diagrams.h1_truncated, dtype=bool)
+    top = max(limit, float(h0[:, 1].max()) if h0.size else 0.0) * 1.05
+    ax_d.plot([0, top], [0, top], color="0.4", lw=0.8, label="birth = death")
+    ax_d.axhline(limit, color="0.4", ls="--", lw=0.8, label=f"radius limit {limit:g}")
+    ax_d.scatter(h0[:, 0], h0[:, 1], s=12, c=DEFECT_COLOURS["h0"], edgecolors="black",
+                 linewidths=0.3, label=f"H0 ({len(h0)})")
+    ax_d.scatter(h1[~cut, 0], h1[~cut, 1], s=14, c=DEFECT_COLOURS["h1"], edgecolors="black",
+                 linewidths=0.3, label=f"H1 ({int(np.count_nonzero(~cut))})")
+    if cut.any():
+        ax_d.scatter(h1[cut, 0], h1[cut, 1], s=30, marker="^", c=DEFECT_COLOURS["h1"],
+                     edgecolors="black", linewidths=0.5,
+                     label=f"H1 cut at the limit ({int(cut.sum())})")
+    ax_d.set(xlim=(-0.03 * top, top), ylim=(-0.03 * top, top), aspect="equal",
+             xlabel="birth (spacings)", ylabel="death (spacings)", title="Persistence diagram")
+    ax_d.legend(fontsize=7, loc="lower right")
+
+    # Barcodes, one panel per dimension (H0 has as many bars as sites, H1 far fewer), longest
+    # bar on top; thousands of bars are one LineCollection each.
+    for ax_b, bars, dim, flags in ((ax_h1, h1, "H1", cut), (ax_h0, h0, "H0", None)):
+        order = np.argsort(-(bars[:, 1] - bars[:, 0]), kind="stable") if bars.size else []
+        colour = DEFECT_COLOURS[dim.lower()]
+        n = len(order)
+        if n:
+            y = np.arange(n)[::-1]
+            segs = np.stack([np.column_stack([bars[order, 0], y]),
+                             np.column_stack([bars[order, 1], y])], axis=1)
+            lw = float(np.clip(150.0 / n, 0.4, 3.0))
+            ax_b.add_collection(LineCollection(segs, colors=colour, linewidths=lw))
+            if flags is not None and flags[order].any():
+                sel = flags[order]
+                ax_b.scatter(bars[order][sel, 1], y[sel], marker=">", s=16, c=colour, zorder=3,
+                             label="cut at the limit")
+                ax_b.legend(fontsize=7, loc="lower right")
+        ax_b.axvline(limit, color="0.4", ls="--", lw=0.8)
+        ax_b.set(xlim=(0, top), ylim=(-1, max(n, 1)), yticks=[],
+                 ylabel=f"{dim} bars ({n})")
+    ax_h1.set_title("Barcode (longest bars on top)")
+    ax_h1.tick_params(labelbottom=False)
+    ax_h0.set_xlabel("scale (spacings)")
+    return fig
+
+
+def plot_defects(image: np.ndarray, pattern: SitePattern, defects: Sequence[dict]) -> Figure:
+    """The defect map: :func:`locate_defects` output drawn on the micrograph.
+
+    H1 loops are circles whose radius is half the bar length (in pixels) with their rank beside
+    them and the placing edge drawn; H0 merges are their minimum-spanning-tree edges with a
+    small circle at the midpoint, sized the same way.
+    """
+    fig, ax, scale = _image_figure(image, legend_rows=1)
+    ax.scatter(pattern.xy[:, 0], pattern.xy[:, 1], s=_marker_area(pattern.spacing * scale, 0.12),
+               c="white", edgecolors="black", linewidths=0.2, alpha=0.6)
+    spacing = pattern.spacing
+    xy = pattern.xy
+    for row in defects:
+        kind = row["kind"]
+        colour = DEFECT_COLOURS[kind]
+        i, j = int(row["site_i"]), int(row["site_j"])
+        if row["located_by"] in ("death edge", "mst edge", "birth edge"):
+            ax.plot(xy[[i, j], 0], xy[[i, j], 1], color=colour, lw=1.6 if kind == "h1" else 2.2,
+                    solid_capstyle="round")
+        radius = max(0.5 * row["length"] * spacing, 0.25 * spacing)
+        ax.add_patch(_circle((row["x"], row["y"]), radius, colour,
+                             lw=2.0 if kind == "h1" else 1.2))
+        if kind == "h1":
+            ax.annotate(str(row["rank"]), (row["x"] + radius, row["y"] - radius), color=colour,
+                        fontsize=8, fontweight="bold", ha="left", va="bottom",
+                        bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none",
+                              "alpha": 0.7})
+    n1 = sum(r["kind"] == "h1" for r in defects)
+    n0 = sum(r["kind"] == "h0" for r in defects)
+    handles = [
+        Line2D([], [], ls="", marker="o", markersize=10, markerfacecolor="none",
+               markeredgecolor=DEFECT_COLOURS["h1"], markeredgewidth=2,
+               label=f"{n1} longest H1 bars (loops; circle radius = half the bar length)"),
+        Line2D([], [], color=DEFECT_COLOURS["h0"], lw=2.2, marker="o", markerfacecolor="none",
+               label=f"{n0} latest H0 merges (widest gaps)"),
+    ]
+    fig.legend(handles=handles, loc="lower center", ncols=2, fontsize=8, frameon=False)
+    return fig
+
+
+def write_inspection_figures(image: np.ndarray, pattern: SitePattern, diagrams: Diagrams,
+                             out: str | Path, *, top: int = 10) -> list[Path]:
+    """Write ``overlay.png``, ``diagram.png``, ``defects.png`` and ``defects.csv`` into ``out``.
+
+    Returns the paths written, in that order.
+    """
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    defects = locate_defects(pattern, diagrams, top=top)
+    paths = [out / "overlay.png", out / "diagram.png", out / "defects.png", out / "defects.csv"]
+    save_figure(plot_sites(image, pattern), paths[0])
+    save_figure(diagram_and_barcode_figure(diagrams), paths[1])
+    save_figure(plot_defects(image, pattern, defects), paths[2])
+    write_defects_csv(defects, paths[3])
+    return paths
+
+
+def site_coordination(pattern: SitePattern) -> np.ndarray:
+    """Delaunay coordination of every site (via :func:`topoclass.order.coordination`).
+
+    Uses the pattern's own triangulation (:attr:`SitePattern.delaunay`), which the order
+    measures have usually built already.
+    """
+    from topoclass.order import coordination
+
+    if pattern.n_sites < 3:
+        return np.zeros(pattern.n_sites, dtype=np.int64)
+    tri = pattern.delaunay
+    neighbours = (tri.indptr, tri.indices) if tri is not None else None
+    return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
+
+
+def image_to_figure_pixels(shape: tuple[int, int]) -> tuple[float, int]:
+    """Scale factor and legend-strip height (pixels) of the image pictures.
+
+    Image pixel ``(x, y)`` (x right, y down; pixel centres at integers) lands on picture pixel
+    ``(scale * (x + 0.5), scale * (y + 0.5))``; the legend strip lies below the image.
+    """
+    rows, cols = int(shape[0]), int(shape[1])
+    scale = float(np.clip(_FIGURE_PX / max(rows, cols), 0.25, 4.0))
+    return scale, 60
+
+
+def plot_confusion(metrics: dict, *, title: str = "Confusion matrix") -> Figure:
+    """Confusion matrix of a metrics dict (``topoclass.model.metrics_from_probabilities``)."""
+    classes = [str(c) for c in metrics["classes"]]
+    cm = np.asarray(metrics["confusion_matrix"], dtype=float)
+    side = 1.2 + 0.9 * len(classes)
+    fig = Figure(figsize=(side + 1.2, side), dpi=100, layout="constrained")
+    ax = fig.subplots()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = cm / cm.sum(axis=1, keepdims=True)
+    im = ax.imshow(np.nan_to_num(share), cmap="cividis", vmin=0, vmax=1)
+    for r in range(len(classes)):
+        for c in range(len(classes)):
+            light = np.nan_to_num(share[r, c]) > 0.6
+            ax.text(c, r, f"{int(cm[r, c])}", ha="center", va="center", fontsize=9,
+                    color="black" if light else "white")
+    ax.set(xticks=range(len(classes)), yticks=range(len(classes)), xticklabels=classes,
+           yticklabels=classes, xlabel="predicted class", ylabel="true class", title=title)
+    ax.tick_params(axis="x", labelrotation=30)
+    fig.colorbar(im, ax=ax, label="share of the true class", shrink=0.8)
+    return fig
+
+
+def plot_reliability(metrics: dict, *, title: str = "Reliability (top-label confidence)"
+                     ) -> Figure:
+    """Reliability diagram of the top-label confidence with the number of images per bin."""
+    table = metrics["reliability"]["top_label"]
+    lower = np.array([r["lower"] for r in table])
+    upper = np.array([r["upper"] for r in table])
+    count = np.array([r["count"] for r in table])
+    conf = np.array([r["confidence"] for r in table], dtype=float)
+    acc = np.array([r["accuracy"] for r in table], dtype=float)
+    fig = Figure(figsize=(5.2, 5.6), dpi=100, layout="constrained")
+    ax, ax_n = fig.subplots(2, 1, height_ratios=(3, 1), sharex=True)
+    ax.plot([0, 1], [0, 1], color="0.4", lw=0.8, ls="--", label="perfect calibration")
+    filled = count > 0
+    ax.bar(lower[filled], acc[filled], width=(upper - lower)[filled], align="edge",
+           color=CLASS_COLOURS[0], alpha=0.35, edgecolor=CLASS_COLOURS[0], label="accuracy")
+    ax.plot(conf[filled], acc[filled], "o-", color=CLASS_COLOURS[5], ms=5,
+            label="accuracy at mean confidence")
+    ax.set(xlim=(0, 1), ylim=(0, 1.02), ylabel="accuracy",
+           title=f"{title}\nECE {metrics.get('ece', float('nan')):.3f}, "
+                 f"{metrics.get('n_samples', int(count.sum()))} images")
+    ax.legend(fontsize=7, loc="upper left")
+    ax_n.bar(lower, count, width=upper - lower, align="edge", color="0.55", edgecolor="0.3")
+    for lo, hi, n in zip(lower, upper, count, strict=True):
+        if n:
+            ax_n.text(0.5 * (lo + hi), n, str(int(n)), ha="center", va="bottom", fontsize=7)
+    ax_n.set(xlabel="top-label confidence", ylabel="images",
+             ylim=(0, max(int(count.max()), 1) * 1.25))
+    return fig
+
+
+def plot_per_class(metrics: dict, *, title: str = "Per class") -> Figure:
+    """Precision and recall of each class as paired bars, with the image counts."""
+    classes = [str(c) for c in metrics["classes"]]
+    per = metrics["per_class"]
+    x = np.arange(len(classes))
+    fig = Figure(figsize=(1.6 + 1.1 * len(classes), 3.8), dpi=100, layout="constrained")
+    ax = fig.subplots()
+    prec = [per[c]["precision"] for c in classes]
+    rec = [per[c]["recall"] for c in classes]
+    ax.bar(x - 0.2, prec, 0.4, color=CLASS_COLOURS[0], label="precision")
+    ax.bar(x + 0.2, rec, 0.4, color=CLASS_COLOURS[1], label="recall")
+    labels = [f"{c}\n({per[c]['support']} images)" for c in classes]
+    ax.set(xticks=x, xticklabels=labels, ylim=(0, 1.1), ylabel="score", title=title)
+    ax.legend(fontsize=8, loc="lower right")
+    return fig
+
+
+def plot_importance(importance: dict, *, top: int = 15,
+                    title: str = "Most important features (permutation, log-loss)") -> Figure:
+    """Horizontal bars of the ``top`` largest permutation importances, with their spread."""
+    mean = np.asarray(importance["importances_mean"])
+    std = np.asarray(importance["importances_std"])
+    order = np.argsort(-mean, kind="stable")[:top]
+    names = [str(importance["names"][k]) for k in order]
+    fig = Figure(figsize=(7.5, 1.2 + 0.3 * len(order)), dpi=100, layout="constrained")
+    ax = fig.subplots()
+    y = np.arange(len(order))[::-1]
+    ax.barh(y, mean[order], xerr=std[order], color=CLASS_COLOURS[0], ecolor="0.3",
+            capsize=2)
+    ax.set(yticks=y, yticklabels=names, xlabel="increase of the log-loss when permuted",
+           title=title)
+    ax.axvline(0, color="0.3", lw=0.6)
+    ax.tick_params(axis="y", labelsize=8)
+    return fig
+
+
+def write_metric_figures(metrics: dict, out: str | Path, *, prefix: str = "",
+                         title: str = "") -> list[Path]:
+    """Write the confusion matrix, reliability diagram and per-class bars (PNG and SVG).
+
+    File names: ``<prefix>confusion.png``, ``<prefix>reliability.png``,
+    ``<prefix>per_class.png`` (each also as ``.svg``). Returns the PNG paths.
+    """
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    lead = f"{title}: " if title else ""
+    figures = {
+        "confusion": plot_confusion(metrics, title=f"{lead}confusion matrix"),
+        "reliability": plot_reliability(metrics, title=f"{lead}reliability"),
+        "per_class": plot_per_class(metrics, title=f"{lead}precision and recall"),
+    }
+    paths = []
+    for name, fig in figures.items():
+        path = out / f"{prefix}{name}.png"
+        save_figure(fig, path, svg=True)
+        paths.append(path)
+    return paths
+
+
+def write_training_figures(model, out: str | Path, X=None, y=None, *, top: int = 15,
+                           n_repeats: int = 3, seed: int = 0) -> list[Path]:
+    """Cross-validation figures of a trained model, and its feature importance when X, y given.
+
+    Writes ``cv_confusion``, ``cv_reliability``, ``cv_per_class`` and ``importance`` (PNG and
+    SVG) and ``importance.csv`` (every feature, by decreasing importance). Returns the PNG and
+    CSV paths.
+    """
+    out = Path(out)
+    paths = write_metric_figures(model.cv_report.metrics, out, prefix="cv_",
+                                 title="cross-validation")
+    if X is not None and y is not None:
+        imp = feature_importance(model, X, y, n_repeats=n_repeats, seed=seed, grouped=True)
+        fig = plot_importance(imp, top=top)
+        save_figure(fig, out / "importance.png", svg=True)
+        csv_path = out / "importance.csv"
+        order = np.argsort(-imp["importances_mean"], kind="stable")
+        with open(csv_path, "w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh, lineterminator="\n")
+            w.writerow(["feature", "importance_mean", "importance_std"])
+            for k in order:
+                w.writerow([imp["names"][k], f"{imp['importances_mean'][k]:.6g}",
+                            f"{imp['importances_std'][k]:.6g}"])
+        paths += [out / "importance.png", csv_path]
+    return paths
+
+
+def _image_figure(image: np.ndarray, *, legend_rows: int = 1):
+    """A figure whose top holds the image pixel for pixel (times ``scale``), a legend below."""
+    image = np.asarray(image, dtype=float)
+    rows, cols = image.shape
+    scale, strip = image_to_figure_pixels(image.shape)
+    dpi = 100
+    width, height = cols * scale, rows * scale + strip * legend_rows
+    fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi)
+    ax = fig.add_axes((0, (strip * legend_rows) / height, 1, rows * scale / height))
+    ax.imshow(image, cmap="gray", vmin=0, vmax=1, interpolation="nearest",
+              extent=(-0.5, cols - 0.5, rows - 0.5, -0.5))
+    ax.set_xlim(-0.5, cols - 0.5)
+    ax.set_ylim(rows - 0.5, -0.5)
+    ax.set_axis_off()
+    return fig, ax, scale
+
+
+def _marker_area(diameter_px: float, fraction: float) -> float:
+    """Scatter marker area (points²) of a disc ``fraction`` of ``diameter_px`` across."""
+    points = max(diameter_px * fraction, 2.0) * 72.0 / 100.0
+    return points**2
+
+
+def _circle(centre, radius, colour, lw):
+    from matplotlib.patches import Circle
+
+    return Circle(centre, radius, fill=False, edgecolor=colour, lw=lw)
+
+
+def _coordination_class(coord: np.ndarray) -> np.ndarray:
+    labels = np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
+    return labels
+
+
+def save_figure(fig: Figure, path: Path, *, svg: bool = False) -> None:
+    fig.savefig(path, dpi=fig.dpi)
+    if svg:
+        fig.savefig(path.with_suffix(".svg"))
