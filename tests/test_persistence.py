@@ -49,7 +49,8 @@ def _sorted_bars(bars):
 @pytest.mark.parametrize("exclude_border", [True, False])
 def test_perfect_triangular_lattice(angle, exclude_border):
     # Common practice: every lattice edge enters at the spacing a, so all finite H0 bars die at
-    # a (variance 0), and each triangle fills as soon as its edges exist, so H1 is empty.
+    # a (variance 0); a Rips triangle enters at its longest edge, so on an equilateral lattice
+    # every 1-cycle is a boundary when it is born and no H1 bar has positive length.
     a = 12.0
     xy = hexagonal_lattice((300, 360), a, angle=angle)
     d = pattern_persistence(_pattern(xy, (300, 360), a), exclude_border=exclude_border)

@@ -110,7 +110,7 @@ def test_pimage_of_one_point_is_the_pixel_integrated_gaussian():
     # multivariate normal CDF at the pixel corners (inclusion-exclusion).
     sigma, b, p = 0.05, 1.2, 0.3
     train = [PatternRecord(_diagrams([1.0], [[0.5, 0.6], [2.0, 3.0]], max_scale=3.0))]
-    pim = PersistenceImageFeatures(resolution=(12, 8), sigma=sigma, dims=(1,), per_site=False)
+    pim = PersistenceImageFeatures(pixels=(12, 8), sigma=sigma, dims=(1,), per_site=False)
     image = pim.fit(train).transform([PatternRecord(_diagrams([1.0], [[b, b + p]]))])[0]
     image = image.reshape(12, 8)
 
@@ -131,8 +131,8 @@ def test_pimage_h0_is_a_one_dimensional_gaussian_profile():
     # al. 2017); reference: scipy.stats.norm CDF differences over the pixels.
     sigma, death = 0.08, 1.1
     train = [PatternRecord(_diagrams([0.4, 2.0]))]
-    pim = PersistenceImageFeatures(resolution=(4, 15), sigma=sigma, dims=(0,),
-                                   weight_power=2.0, per_site=False).fit(train)
+    pim = PersistenceImageFeatures(pixels=(4, 15), sigma=sigma, dims=(0,),
+                                   weight_exponent=2.0, per_site=False).fit(train)
     profile = pim.transform([PatternRecord(_diagrams([death]))])[0]
     edges = pim.persistence_edges_[0]
     expected = death**2 * np.diff(scipy.stats.norm(death, sigma).cdf(edges))
@@ -147,7 +147,7 @@ def test_pimage_agrees_with_persim():
     # Births span [1.0, 1.5] and persistence reaches 0.625, so the learned grid is
     # [0.875, 1.625] x [0, 0.75] in 6 x 6 pixels of 0.125 (exact in binary).
     train = [PatternRecord(_diagrams([1.0], [[1.0, 1.25], [1.5, 2.125], [1.25, 1.5]]))]
-    pim = PersistenceImageFeatures(resolution=(6, 6), sigma=sigma, dims=(1,), per_site=False)
+    pim = PersistenceImageFeatures(pixels=(6, 6), sigma=sigma, dims=(1,), per_site=False)
     pim.fit(train)
     np.testing.assert_allclose(pim.birth_edges_, np.arange(0.875, 1.626, 0.125))
     np.testing.assert_allclose(pim.persistence_edges_[1], np.arange(0.0, 0.751, 0.125))
@@ -355,12 +355,13 @@ def test_barcode_statistics_names_and_raw_option():
         assert row[_column(raw, "h1_length_sum")] == pytest.approx(record.diagrams.lengths(1).sum())
 
 
-# --- perfect grid -----------------------------------------------------------------------------
+# --- ideal lattice ----------------------------------------------------------------------------
 
 
-def test_perfect_grid_residuals_vanish_on_a_perfect_lattice_only():
-    # A perfect triangular lattice: every H0 bar dies at the spacing and every loop is filled by
-    # triangles as it forms, so both measures are 0 (common practice); diagrams from ripser.
+def test_ideal_lattice_residuals_vanish_on_an_ideal_lattice_only():
+    # An ideal triangular lattice: every finite H0 bar dies at the spacing, and a Rips triangle
+    # enters at its longest edge, so every 1-cycle is a boundary when it is born and no H1 bar
+    # has positive length; both measures are 0 (common practice); diagrams from ripser.
     xy = _hex_lattice()
     perfect = PatternRecord(_rips_diagrams(xy, 2.5))
     rng = np.random.default_rng(2)
@@ -495,8 +496,8 @@ def test_bad_input_gives_clear_errors():
         BarcodeStatistics().fit([records[0], "membrane.tif"])
     with pytest.raises(TopoclassError, match="no records"):
         BettiCurveFeatures().fit([])
-    with pytest.raises(TopoclassError, match="resolution"):
-        PersistenceImageFeatures(resolution=(0, 3)).fit(records)
+    with pytest.raises(TopoclassError, match="pixels"):
+        PersistenceImageFeatures(pixels=(0, 3)).fit(records)
     with pytest.raises(TopoclassError, match="sigma"):
         PersistenceImageFeatures(sigma=-1).fit(records)
     with pytest.raises(TopoclassError, match="dims"):
@@ -529,7 +530,7 @@ def test_feature_sets_names_shapes_and_params():
             assert "betti1_t1.15" in names and "h0_length_variance" in names
     assert widths["all"] == widths["topology"] + widths["order"]
 
-    small = make_features("topology", pimage__resolution=(3, 2), betti__n_points=5)
+    small = make_features("topology", pimage__pixels=(3, 2), betti__n_points=5)
     small.fit(train)
     assert sum(n.startswith("h1_pimage") for n in small.get_feature_names_out()) == 6
     assert sum(n.startswith("betti") for n in small.get_feature_names_out()) == 10

@@ -1,4 +1,4 @@
-"""topoclass: sort micrographs of nearly hexagonal patterns by the kind and amount of disorder.
+"""topoclass: sort micrographs of self-organised hexagonal patterns by kind and amount of disorder.
 
 Pipeline (one module per stage, data flows one way)::
 

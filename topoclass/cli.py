@@ -21,7 +21,7 @@ app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
-    help="Sort micrographs of nearly hexagonal patterns by the kind and amount of disorder.",
+    help="Sort micrographs of self-organised hexagonal patterns by kind and amount of disorder.",
 )
 
 
@@ -38,7 +38,7 @@ def _root(
     version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
                                  help="Print the version and exit."),
 ) -> None:
-    """Sort micrographs of nearly hexagonal patterns by the kind and amount of disorder."""
+    """Sort micrographs of self-organised hexagonal patterns by kind and amount of disorder."""
 
 
 def main() -> None:

@@ -64,7 +64,8 @@ DEFAULT_ORDER_KEYS: tuple[str, ...] = ORDER_MEASURE_KEYS[:7]
 
 #: Named feature sets accepted by :func:`make_features`.
 FEATURE_SETS: dict[str, str] = {
-    "two-bar": "H0 bar-length variance and H1 total bar length per site (zero on a perfect grid)",
+    "two-bar": ("H0 bar-length variance and H1 total bar length per site (zero on an ideal "
+                "triangular lattice)"),
     "order": "classic order measures only (psi6, coordination defects, NN spread, Clark-Evans)",
     "topology": "persistence images, landscapes, Betti curves and barcode statistics",
     "all": "topology plus the classic order measures",
@@ -106,20 +107,24 @@ class PersistenceImageFeatures(_RecordTransformer):
     """Persistence images (Adams et al., JMLR 2017) of H0 and H1, flattened into features.
 
     Each bar ``(birth, death)`` becomes the point ``(birth, persistence)``; the image is the sum
-    over points of a Gaussian of standard deviation ``sigma`` times a weight
-    ``persistence ** weight_power``, integrated over each pixel (the same pixel integrals as
-    ``persim.PersistenceImager``, computed here in vectorised form). H0 births are all 0, so H0
-    gives a 1-D profile over persistence instead of an image.
+    over points of an isotropic Gaussian of standard deviation ``sigma`` (the paper's notation)
+    times a weight ``persistence ** weight_exponent``, integrated exactly over each pixel (error
+    functions at the pixel edges, vectorised). The tests check the pixels against a reference
+    implementation from the package registry. H0 births are all 0, so H0 gives a 1-D profile
+    over persistence instead of an image.
 
     Parameters
     ----------
-    resolution : (int, int)
-        Pixels along birth and along persistence; H0 uses the persistence count only.
+    pixels : (int, int)
+        Number of pixels along birth and along persistence; H0 uses the persistence count only.
     sigma : float
-        Standard deviation of the isotropic Gaussian kernel, in spacing units.
-    weight_power : float
-        Exponent ``n`` of the weight ``persistence ** n`` (1 is linear in persistence, 0 gives
-        every bar the same weight).
+        Standard deviation of the Gaussian, in spacing units. The default 0.1 is about twice the
+        RMS site-position error that ``benchmarks/bench_sites.py`` measures (at most 0.043
+        spacing, ``benchmarks/RESULTS_sites.md``), so bars that differ only by position noise
+        share a pixel while a vacancy loop (persistence about 0.7) stays apart from noise loops.
+    weight_exponent : float
+        ``n`` in the weight ``persistence ** n``: 1 is linear in persistence (zero on the
+        diagonal, as the paper requires for stability), 0 gives every bar the same weight.
     dims : tuple of int
         Homology dimensions to include, from {0, 1}.
     per_site : bool
@@ -127,7 +132,7 @@ class PersistenceImageFeatures(_RecordTransformer):
 
     Attributes
     ----------
-    birth_edges_ : ndarray of shape (resolution[0] + 1,)
+    birth_edges_ : ndarray of shape (pixels[0] + 1,)
         Pixel edges along birth of the H1 image, learned from the training bars: their birth range
         padded by ``sigma`` on each side (never below 0).
     persistence_edges_ : dict of int to ndarray
@@ -138,20 +143,20 @@ class PersistenceImageFeatures(_RecordTransformer):
         ``h0_pimage_p<centre>`` and ``h1_pimage_b<centre>_p<centre>`` (pixel centres).
     """
 
-    def __init__(self, resolution=(10, 10), sigma=0.1, weight_power=1.0, dims=(0, 1),
+    def __init__(self, pixels=(10, 10), sigma=0.1, weight_exponent=1.0, dims=(0, 1),
                  per_site=True):
-        self.resolution = resolution
+        self.pixels = pixels
         self.sigma = sigma
-        self.weight_power = weight_power
+        self.weight_exponent = weight_exponent
         self.dims = dims
         self.per_site = per_site
 
     def fit(self, X, y=None):
         """Learn the pixel grid from the range of the training bars."""
         diagrams = _diagrams_of(X, type(self).__name__)
-        n_birth, n_pers = _check_resolution(self.resolution)
+        n_birth, n_pers = _check_pixels(self.pixels)
         sigma = _check_positive(self.sigma, "sigma")
-        _check_nonnegative(self.weight_power, "weight_power")
+        _check_nonnegative(self.weight_exponent, "weight_exponent")
         dims = _check_dims(self.dims)
         fallback = max(d.max_scale for d in diagrams)
         self.persistence_edges_ = {}
@@ -188,7 +193,7 @@ class PersistenceImageFeatures(_RecordTransformer):
             for dim in sorted(self.persistence_edges_):
                 bars = bars_of(d, dim)
                 pers = bars[:, 1] - bars[:, 0]
-                weight = scale * pers**self.weight_power
+                weight = scale * pers**self.weight_exponent
                 p_mass = _pixel_mass(pers, self.persistence_edges_[dim], sigma)
                 # einsum, not BLAS matmul: its sums do not depend on the number of threads, so a
                 # record gets the same bits in a worker process as in the main one.
@@ -391,12 +396,13 @@ class BarcodeStatistics(_RecordTransformer):
 
 
 class IdealLatticeResiduals(_RecordTransformer):
-    """The two barcode measures a perfect hexagonal grid drives to zero.
+    """The two barcode measures that vanish on an ideal triangular lattice.
 
-    ``h0_length_variance``: on a perfect grid every site joins its neighbours at exactly one
-    spacing, so all H0 bars have the same length. ``h1_length_sum_per_site`` (or the raw
-    ``h1_length_sum`` with ``per_site=False``): on a perfect grid every loop of neighbours is
-    filled by triangles the moment it forms, so there are no H1 bars of positive length.
+    ``h0_length_variance``: in the Rips filtration of an ideal lattice every finite H0 class
+    dies at the lattice spacing, so the H0 bar lengths have zero variance.
+    ``h1_length_sum_per_site`` (or the raw ``h1_length_sum`` with ``per_site=False``): a Rips
+    triangle enters at its longest edge, so on an equilateral lattice every 1-cycle is a
+    boundary when it is born and no H1 bar has positive length.
 
     Parameters
     ----------
@@ -663,15 +669,15 @@ def _check_dims(dims) -> tuple[int, ...]:
     return out
 
 
-def _check_resolution(resolution) -> tuple[int, int]:
+def _check_pixels(pixels) -> tuple[int, int]:
     try:
-        n_birth, n_pers = (int(r) for r in resolution)
+        n_birth, n_pers = (int(r) for r in pixels)
     except (TypeError, ValueError):
         n_birth = n_pers = 0
     if n_birth < 1 or n_pers < 1:
         raise FeatureSettingsError(
-            f"resolution must be two positive pixel counts (birth, persistence), not "
-            f"{resolution!r}"
+            f"pixels must be two positive pixel counts (birth, persistence), not "
+            f"{pixels!r}"
         )
     return n_birth, n_pers
 

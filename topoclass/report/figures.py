@@ -95,10 +95,12 @@ def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
 
 
 def diagram_and_barcode_figure(diagrams: Diagrams) -> Figure:
-    """Persistence diagram (H0 and H1, spacing units) beside the barcode.
+    """Lifetime diagram of H0 and H1 (spacing units) beside the barcode.
 
-    The diagonal is drawn; H1 bars cut at the radius limit ``max_scale`` are drawn as
-    triangles on the dashed line of the limit.
+    The diagram plots each bar at (birth, persistence), the coordinates in which persistence
+    images are built, so that distance from the floor is distance from the noise. H0 bars are
+    all born at 0 and form the column on the left; the radius limit is the falling line
+    ``persistence = limit - birth``, and H1 bars cut there are drawn as triangles on it.
     """
     fig = Figure(figsize=(10, 4.4), dpi=100)
     # Fixed margins: a layout engine would cost more than the drawing itself here.
@@ -110,19 +112,27 @@ def diagram_and_barcode_figure(diagrams: Diagrams) -> Figure:
     limit = float(diagrams.max_scale)
     h0, h1, cut = diagrams.h0, diagrams.h1, np.asarray(diagrams.h1_truncated, dtype=bool)
     top = max(limit, float(h0[:, 1].max()) if h0.size else 0.0) * 1.05
-    ax_d.plot([0, top], [0, top], color="0.4", lw=0.8, label="birth = death")
-    ax_d.axhline(limit, color="0.4", ls="--", lw=0.8, label=f"radius limit {limit:g}")
-    ax_d.scatter(h0[:, 0], h0[:, 1], s=12, c=DEFECT_COLOURS["h0"], edgecolors="black",
-                 linewidths=0.3, label=f"H0 ({len(h0)})")
-    ax_d.scatter(h1[~cut, 0], h1[~cut, 1], s=14, c=DEFECT_COLOURS["h1"], edgecolors="black",
-                 linewidths=0.3, label=f"H1 ({int(np.count_nonzero(~cut))})")
+    life0 = h0[:, 1] - h0[:, 0] if h0.size else np.empty(0)
+    life1 = h1[:, 1] - h1[:, 0] if h1.size else np.empty(0)
+    ax_d.set_facecolor("#f7f7f4")
+    ax_d.grid(color="white", lw=1.0)
+    ax_d.set_axisbelow(True)
+    ax_d.plot([0, limit], [limit, 0], color="0.35", ls=(0, (4, 2)), lw=0.9,
+              label=f"radius limit {limit:g}")
+    ax_d.scatter(np.zeros_like(life0), life0, s=26, marker="_", c=DEFECT_COLOURS["h0"],
+                 linewidths=1.4, label=f"H0 ({len(h0)})")
+    ax_d.scatter(h1[~cut, 0], life1[~cut], s=16, marker="D", c=DEFECT_COLOURS["h1"],
+                 edgecolors="white", linewidths=0.3, label=f"H1 ({int(np.count_nonzero(~cut))})")
     if cut.any():
-        ax_d.scatter(h1[cut, 0], h1[cut, 1], s=30, marker="^", c=DEFECT_COLOURS["h1"],
+        ax_d.scatter(h1[cut, 0], life1[cut], s=30, marker="^", c=DEFECT_COLOURS["h1"],
                      edgecolors="black", linewidths=0.5,
                      label=f"H1 cut at the limit ({int(cut.sum())})")
-    ax_d.set(xlim=(-0.03 * top, top), ylim=(-0.03 * top, top), aspect="equal",
-             xlabel="birth (spacings)", ylabel="death (spacings)", title="Persistence diagram")
-    ax_d.legend(fontsize=7, loc="lower right")
+    ax_d.set(xlim=(-0.04 * top, top), ylim=(-0.02 * top, top),
+             xlabel="birth (spacings)", ylabel="persistence = death - birth (spacings)",
+             title="Lifetime diagram")
+    for side in ("top", "right"):
+        ax_d.spines[side].set_visible(False)
+    ax_d.legend(fontsize=7, loc="upper right", frameon=False)
 
     # Barcodes, one panel per dimension (H0 has as many bars as sites, H1 far fewer), longest
     # bar on top; thousands of bars are one LineCollection each.
