@@ -13,9 +13,10 @@ from pathlib import Path
 import typer
 
 from topoclass.errors import TopoclassError
+from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 _FEATURE_HELP = "two-bar, order, topology or all"
-_CLASSIFIER_HELP = "forest (default), logistic, boosting or svm"
+_CLASSIFIER_HELP = f"{', '.join(CLASSIFIERS)} (default {DEFAULT_CLASSIFIER})"
 
 app = typer.Typer(
     add_completion=False,
@@ -108,7 +109,7 @@ def train(
     labels: Path = typer.Argument(..., help="Label sheet (CSV image,label[,group]) or folders."),
     model: Path | None = typer.Option(None, "--model", help="Model folder to write."),
     features: str = typer.Option("all", "--features", help="Feature set: " + _FEATURE_HELP),
-    classifier: str = typer.Option("forest", "--classifier", help="Classifier: "
+    classifier: str = typer.Option(DEFAULT_CLASSIFIER, "--classifier", help="Classifier: "
                                    + _CLASSIFIER_HELP),
     cv: int = typer.Option(5, "--cv", min=2, help="Cross-validation folds."),
     calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid or isotonic."),

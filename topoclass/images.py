@@ -168,7 +168,7 @@ def collect_image_paths(inputs: Sequence[str | Path]) -> list[Path]:
     for item in inputs:
         path = Path(os.path.expanduser(item))
         if path.is_dir():
-            found.extend(_images_in_folder(path))
+            found.extend(images_in_folder(path))
         elif path.is_file() and path.suffix.lower() in LIST_EXTENSIONS:
             found.extend(_images_in_list(path))
         elif path.exists() or path.suffix.lower() in IMAGE_EXTENSIONS:
@@ -554,7 +554,8 @@ def _decoder_state() -> Iterator[list[str]]:
 # --------------------------------------------------------------------------- collecting paths
 
 
-def _images_in_folder(folder: Path) -> list[Path]:
+def images_in_folder(folder: Path) -> list[Path]:
+    """Image files below a folder (any depth; hidden files and folders left out), sorted."""
     found = []
     for root, dirs, files in os.walk(folder):
         dirs[:] = [d for d in dirs if not d.startswith(".")]
@@ -587,7 +588,7 @@ def _images_in_list(list_file: Path) -> list[Path]:
         except (OSError, ValueError):  # e.g. a line too long to be a file name
             is_dir = False
         if is_dir:
-            found.extend(_images_in_folder(path))
+            found.extend(images_in_folder(path))
         else:
             found.append(path)
     return found

@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import NoReturn
 
 from topoclass.errors import LabelSheetError
-from topoclass.images import IMAGE_EXTENSIONS
+from topoclass.images import IMAGE_EXTENSIONS, images_in_folder
 
 REQUIRED_COLUMNS: tuple[str, ...] = ("image", "label")
 OPTIONAL_COLUMNS: tuple[str, ...] = ("group",)
@@ -318,7 +318,7 @@ def _read_folder(source: Path):
     labels: list[str] = []
     listing: list[str] = []
     for class_dir in class_dirs:
-        found = _images_below(class_dir)
+        found = images_in_folder(class_dir)
         if not found:
             problems.append(f"class folder '{class_dir.name}' holds no images "
                             f"({' '.join(IMAGE_EXTENSIONS)}), add images or remove it")
@@ -328,15 +328,6 @@ def _read_folder(source: Path):
             listing.append(path.relative_to(source).as_posix())
     digest = hashlib.sha256("\n".join(sorted(listing)).encode("utf-8")).hexdigest()
     return images, labels, None, digest, problems
-
-
-def _images_below(folder: Path) -> list[Path]:
-    found = []
-    for root, dirs, files in os.walk(folder):
-        dirs[:] = [d for d in dirs if not d.startswith(".")]
-        found += [Path(root) / name for name in files
-                  if not name.startswith(".") and Path(name).suffix.lower() in IMAGE_EXTENSIONS]
-    return sorted(found)
 
 
 # --------------------------------------------------------------------------- whole-set checks
