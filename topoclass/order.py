@@ -38,7 +38,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
     Parameters
     ----------
     pattern : SitePattern
-        Sites, spacing and border flags; the frame is ``pattern.shape``.
+        Sites, spacing and border flags; the frame is ``pattern.frame``.
 
     Returns
     -------
@@ -56,7 +56,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
         * ``mean_coordination`` — mean Delaunay coordination (6 on average in any large
           triangulation, by Euler's formula; a check on the border handling);
         * ``nn_mean_per_spacing`` — mean nearest-neighbour distance / spacing;
-        * ``density_per_spacing2`` — sites per spacing² over the whole frame
+        * ``density_per_spacing2`` — sites per spacing² over the searched region
           (``2 / sqrt(3) = 1.1547`` for a triangular lattice whose spacing is the bond length);
         * ``lattice_angle_deg`` — mean lattice orientation ``arg(mean psi6) / 6`` in degrees in
           (-30, 30], image axes (x right, y down).
@@ -78,8 +78,7 @@ def order_measures(pattern: SitePattern) -> dict[str, float]:
     coord = np.diff(indptr)
     psi = psi6(xy, (indptr, indices))
     nn = nearest_neighbour_distances(xy, focal=interior)
-    rows, cols = pattern.shape
-    area = float(rows * cols)
+    area = pattern.area  # the searched region: a data bar left out holds no sites
     c_in, psi_in = coord[interior], psi[interior]
     mean_psi = psi_in.mean()
     nn_mean = float(nn.mean())
