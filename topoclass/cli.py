@@ -118,7 +118,8 @@ def train(
     classifier: str = typer.Option(DEFAULT_CLASSIFIER, "--classifier", help="Classifier: "
                                    + _CLASSIFIER_HELP),
     cv: int = typer.Option(5, "--cv", min=2, help="Cross-validation folds."),
-    calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid or isotonic."),
+    calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid, temperature "
+                                    "or isotonic (auto picks from the class sizes)."),
     select: bool = typer.Option(False, "--select", help="Compare feature sets and classifiers "
                                 "by grouped CV and keep the best."),
     seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same model."),
@@ -290,6 +291,9 @@ def _usage_line(exc: typer.TyperException) -> str:
 def _echo_failures(failures) -> None:
     for r in failures:
         typer.echo(f"skipped: {r.error}", err=True)
+    if failures:
+        typer.echo(f"skipped {len(failures)} image(s) that could not be measured (listed above)",
+                   err=True)
 
 
 def _cv_summary(model) -> str:

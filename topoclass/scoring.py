@@ -97,7 +97,9 @@ def score_images(
     out : path-like
         The CSV to write. An existing file is refused unless ``resume`` or ``overwrite``.
     settings : FeatureSettings, optional
-        Must match the settings the model was trained with; taken from the model when omitted.
+        Site-finding and persistence settings; when omitted, the ones the model was trained
+        with (:meth:`FeatureSettings.from_model`). Scoring with other settings than the
+        training's gives meaningless probabilities; pass them only to change ``max_pixels``.
     jobs : int
         Worker processes for feature extraction.
     resume : bool
@@ -206,15 +208,11 @@ def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[
     if not ok:
         return rows
     records = [results[i].record for i in ok]
-    try:
-        proba, unfamiliarity, reasons = model.assess(records)
-        proba = np.asarray(proba, dtype=float)
-        unfamiliarity = np.asarray(unfamiliarity, dtype=float)
-    except Exception as exc:  # keep the batch going; the rows say what happened
-        for i in ok:
-            rows[i].update(status="error",
-                           message=f"{results[i].path}: scoring failed: {exc}")
-        return rows
+    # No try/except here: a record that was measured but cannot be scored is a bug (or a model
+    # that does not fit its own settings) and must fail loudly, not turn into error rows.
+    proba, unfamiliarity, reasons = model.assess(records)
+    proba = np.asarray(proba, dtype=float)
+    unfamiliarity = np.asarray(unfamiliarity, dtype=float)
     for k, i in enumerate(ok):
         rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
     return rows
@@ -263,7 +261,8 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
                        encoding="utf-8")
         return {}
     text = out.read_text(encoding="utf-8")
-    header = text.split("\n", 1)[0].split(",")
+    # Parse the header as CSV: a class name may hold a comma or a quote.
+    header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
     if header != columns:
         raise TopoclassError(
             f"{out}: its columns do not match this model's classes; resume only with the model "
@@ -297,7 +296,8 @@ class _OutputLock:
     """An exclusive lock file ``<out>.lock`` holding the writer's PID.
 
     A lock left by a process that no longer runs (killed) is taken over, so a killed run can be
-    resumed without manual clean-up.
+    resumed without manual clean-up; so is an empty or garbled lock older than
+    ``_EMPTY_LOCK_SECONDS`` (a crash between creating the file and writing the PID).
     """
 
     def __init__(self, out: Path):
@@ -325,13 +325,22 @@ class _OutputLock:
         self.path.unlink(missing_ok=True)
 
 
+#: An empty lock this old cannot belong to a live run: the PID is written right after creation.
+_EMPTY_LOCK_SECONDS = 10.0
+
+
 def _lock_is_stale(path: Path) -> bool:
     try:
-        pid = int(path.read_text().strip() or "0")
-    except (OSError, ValueError):
+        text = path.read_text().strip()
+        age = time.time() - path.stat().st_mtime
+    except OSError:
         return False
+    try:
+        pid = int(text)
+    except ValueError:
+        pid = 0
     if pid <= 0:
-        return False
+        return age > _EMPTY_LOCK_SECONDS
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
