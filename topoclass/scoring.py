@@ -3,8 +3,9 @@
 Stage 7 of the pipeline. Rows are appended and flushed as images finish, so a crash, ``kill -9``
 or Ctrl-C leaves a valid CSV holding every finished image; ``resume=True`` skips the images
 already in the file (the same file however its path is spelled, with the same content hash) and
-scores the rest. A lock file beside the output keeps two runs from writing the same file at once. Rows come in input order whatever the
-number of jobs, so the same inputs and model give a byte-identical file.
+scores the rest. A lock file beside the output keeps two runs from writing the same file at once.
+Rows come in input order whatever the number of jobs, so the same inputs and model give a
+byte-identical file.
 """
 
 from __future__ import annotations
