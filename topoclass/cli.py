@@ -253,6 +253,35 @@ def demo(
         typer.echo(f"report:     {report}")
 
 
+@app.command()
+def suggest(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
+    count: int = typer.Option(10, "--count", min=1, help="How many images to suggest."),
+    as_json: bool = typer.Option(False, "--json", help="Print a JSON list with the predicted "
+                                 "class, confidence and reason of each."),
+    seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same list."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Print the images worth labelling next, best first (one path per line)."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.ranking import suggest_from_sheet, suggestion_json
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    ranked, failures = suggest_from_sheet(paths, sheet, count=count, seed=seed, jobs=jobs,
+                                          cache_dir=cache, progress=True)
+    _echo_failures(failures)
+    if as_json:
+        typer.echo(json.dumps([suggestion_json(p, s) for p, s in ranked], indent=1))
+    else:
+        for path, _ in ranked:
+            typer.echo(str(path))
+
+
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]
     spacing = f"{summary['spacing_px']:.2f} px"

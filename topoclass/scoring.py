@@ -2,9 +2,10 @@
 
 Stage 7 of the pipeline. Rows are appended and flushed as images finish, so a crash, ``kill -9``
 or Ctrl-C leaves a valid CSV holding every finished image; ``resume=True`` skips the images
-already in the file (same path, same content hash) and scores the rest. A lock file beside the
-output keeps two runs from writing the same file at once. Rows come in input order whatever the
-number of jobs, so the same inputs and model give a byte-identical file.
+already in the file (the same file however its path is spelled, with the same content hash) and
+scores the rest. A lock file beside the output keeps two runs from writing the same file at once.
+Rows come in input order whatever the number of jobs, so the same inputs and model give a
+byte-identical file.
 """
 
 from __future__ import annotations
@@ -125,15 +126,16 @@ def score_images(
         todo: list[Path] = []
         for p in paths:
             p = Path(p)
-            if str(p) in done:
+            key = _same_file_key(p)
+            if key in done:
                 try:
-                    unchanged = done[str(p)] == file_sha256(p)
+                    unchanged = file_sha256(p) in done[key]
                 except OSError:
                     unchanged = True  # gone since: keep its finished row
                 if unchanged:
                     summary.skipped += 1
                     continue
-                _drop_rows(out, columns, str(p))  # the file changed: its old row is stale
+                _drop_rows(out, columns, key)  # the file changed: its old row is stale
             todo.append(p)
         with open(out, "a", newline="", encoding="utf-8") as fh:
             results = iter_records(
@@ -249,8 +251,12 @@ def _format_row(row: dict[str, object], columns: list[str]) -> str:
     return buf.getvalue()
 
 
-def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[str, str]:
-    """Start a fresh file, or validate and clean an existing one; return {image: sha256} done."""
+def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path, set[str]]:
+    """Start a fresh file, or validate and clean an existing one.
+
+    Returns the finished images as {resolved path: content hashes of its rows}, so that a
+    path spelled another way (relative, absolute, through a symlink) still finds its row.
+    """
     if not (resume and out.exists()):
         out.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
                        encoding="utf-8")
@@ -266,11 +272,19 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[str,
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.
         out.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
-    return {r["image"]: r.get("sha256", "") for r in read_scores(out)}
+    done: dict[Path, set[str]] = {}
+    for r in read_scores(out):
+        done.setdefault(_same_file_key(r["image"]), set()).add(r.get("sha256") or "")
+    return done
 
 
-def _drop_rows(out: Path, columns: list[str], image: str) -> None:
-    rows = [r for r in read_scores(out) if r["image"] != image]
+def _same_file_key(path: str | Path) -> Path:
+    """One key for every spelling of a file's path: relative, absolute, through symlinks."""
+    return Path(os.path.expanduser(path)).resolve()
+
+
+def _drop_rows(out: Path, columns: list[str], key: Path) -> None:
+    rows = [r for r in read_scores(out) if _same_file_key(r["image"]) != key]
     tmp = out.with_name(out.name + ".tmp")
     with open(tmp, "w", newline="", encoding="utf-8") as fh:
         fh.write(_format_row(dict(zip(columns, columns, strict=True)), columns))
