@@ -117,11 +117,15 @@ class Triangulation:
     coplanar : ndarray of int, shape (m, 2)
         ``(point, nearest vertex)`` for the points qhull left out because they sit on (or
         within its precision of) another point; they have no neighbours in the CSR lists.
+    simplices : ndarray of int, shape (t, 3)
+        The triangles, as point indices (scipy's ``Delaunay.simplices``); the physical amounts
+        (:mod:`topoclass.amounts`) find the holes of the pattern among them.
     """
 
     indptr: np.ndarray
     indices: np.ndarray
     coplanar: np.ndarray
+    simplices: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), np.int64))
 
 
 def triangulate(xy: np.ndarray) -> Triangulation | None:
@@ -136,7 +140,7 @@ def triangulate(xy: np.ndarray) -> Triangulation | None:
     indptr, indices = tri.vertex_neighbor_vertices
     coplanar = tri.coplanar[:, [0, 2]] if tri.coplanar.size else np.zeros((0, 2), np.int64)
     return Triangulation(indptr.astype(np.int64), indices.astype(np.int64),
-                         coplanar.astype(np.int64))
+                         coplanar.astype(np.int64), tri.simplices.astype(np.int64))
 
 
 _MIN_SIDE = 16  # pixels; a smaller image cannot show several periods of any resolvable lattice

@@ -20,6 +20,7 @@ from topoclass.report.figures import (
     image_to_figure_pixels,
     plot_confusion,
     plot_defects,
+    plot_grains,
     plot_importance,
     plot_per_class,
     plot_reliability,
@@ -35,7 +36,7 @@ from topoclass.report.importance import feature_family, feature_importance
 __all__ = [
     "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "MAX_DETAILS",
     "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
-    "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects",
+    "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects", "plot_grains",
     "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",
     "site_coordination", "write_batch_report", "write_defects_csv", "write_inspection_figures",
     "write_metric_figures", "write_training_figures",
