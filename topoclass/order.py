@@ -14,7 +14,7 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 from topoclass.errors import PatternError
-from topoclass.sites import SitePattern, Triangulation, triangulate
+from topoclass.sites import SitePattern, Triangulation, site_coordinates, triangulate
 
 #: The keys every result of :func:`order_measures` has, in this order.
 ORDER_MEASURE_KEYS = (
@@ -111,7 +111,7 @@ def delaunay_neighbours(
     PatternError
         With fewer than 3 sites or all sites on one line (no triangulation).
     """
-    xy = _as_xy(xy, source)
+    xy = site_coordinates(xy, source)
     return _neighbours(triangulate(xy), xy.shape[0], source or "the site pattern")
 
 
@@ -148,7 +148,7 @@ def psi6(xy: np.ndarray, neighbours: tuple | None = None) -> np.ndarray:
     -------
     complex ndarray of shape (n,)
     """
-    xy = _as_xy(xy, None)
+    xy = site_coordinates(xy)
     indptr, indices = neighbours if neighbours is not None else delaunay_neighbours(xy)
     count = np.diff(indptr)
     owner = np.repeat(np.arange(xy.shape[0]), count)
@@ -164,7 +164,7 @@ def psi6(xy: np.ndarray, neighbours: tuple | None = None) -> np.ndarray:
 
 def nearest_neighbour_distances(xy: np.ndarray, focal: np.ndarray | None = None) -> np.ndarray:
     """Distance from each (focal) site to its nearest other site among all sites."""
-    xy = _as_xy(xy, None)
+    xy = site_coordinates(xy)
     if xy.shape[0] < 2:
         return np.zeros(0)
     queries = xy if focal is None else xy[np.asarray(focal, dtype=bool)]
@@ -210,7 +210,7 @@ def clark_evans(
     -------
     float
     """
-    xy = _as_xy(xy, None)
+    xy = site_coordinates(xy)
     n = xy.shape[0]
     if not (np.isfinite(area) and area > 0):
         raise ValueError(f"area must be a positive number, not {area!r}")
@@ -229,14 +229,3 @@ def _clark_evans_index(
     if perimeter is not None:
         expected += (0.0514 + 0.041 / np.sqrt(n)) * perimeter / n
     return float(nn.mean() / expected)
-
-
-def _as_xy(xy: np.ndarray, source: str | None) -> np.ndarray:
-    xy = np.asarray(xy, dtype=np.float64)
-    name = source or "the site pattern"
-    if xy.ndim != 2 or xy.shape[1] != 2:
-        raise PatternError(f"{name}: site coordinates must have shape (n, 2), got {xy.shape}")
-    if not np.all(np.isfinite(xy)):
-        raise PatternError(f"{name}: site coordinates contain NaN or infinity; "
-                           "check the site finding of this image")
-    return xy

@@ -128,6 +128,24 @@ class Triangulation:
     simplices: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), np.int64))
 
 
+def site_coordinates(xy, source: str | None = None) -> np.ndarray:
+    """Site coordinates as a float64 ``(n, 2)`` array, checked once for every stage.
+
+    Raises
+    ------
+    PatternError
+        When ``xy`` is not ``(n, 2)`` or holds NaN or infinity; the message names ``source``.
+    """
+    name = source or "the site pattern"
+    xy = np.asarray(xy, dtype=np.float64)
+    if xy.ndim != 2 or xy.shape[1] != 2:
+        raise PatternError(f"{name}: site coordinates must have shape (n, 2), got {xy.shape}")
+    if not np.all(np.isfinite(xy)):
+        raise PatternError(f"{name}: site coordinates contain NaN or infinity; "
+                           "check the site finding of this image")
+    return xy
+
+
 def triangulate(xy: np.ndarray) -> Triangulation | None:
     """Delaunay neighbours of points ``xy`` (n, 2); None with fewer than 3 or all collinear."""
     xy = np.asarray(xy, dtype=np.float64).reshape(-1, 2)
