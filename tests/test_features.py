@@ -20,9 +20,9 @@ def _count_extractions(monkeypatch) -> list:
     calls = []
     real = features.measure_pattern
 
-    def counting(path, settings=None):
+    def counting(path, settings=None, **options):
         calls.append(path)
-        return real(path, settings)
+        return real(path, settings, **options)
 
     monkeypatch.setattr(features, "measure_pattern", counting)
     return calls
