@@ -320,9 +320,12 @@ def _human_summary(summary: dict) -> str:
     lines.append("  (persistence values below are in units of the spacing)")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
     for key, value in summary.items():
-        if key in skip or value is None:
+        if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
         text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        err = summary.get(key + "_err")
+        if err is not None:
+            text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")

@@ -120,12 +120,16 @@ class Triangulation:
     cell_area : ndarray of float, shape (n,)
         Area of each point's Voronoi (Dirichlet) cell, from the Delaunay triangles; NaN for
         points on the convex hull (unbounded cell) and for the points qhull left out.
+    simplices : ndarray of int, shape (t, 3)
+        The triangles, as point indices (scipy's ``Delaunay.simplices``); the physical amounts
+        (:mod:`topoclass.amounts`) find the holes of the pattern among them.
     """
 
     indptr: np.ndarray
     indices: np.ndarray
     coplanar: np.ndarray
     cell_area: np.ndarray | None = None
+    simplices: np.ndarray = field(default_factory=lambda: np.zeros((0, 3), np.int64))
 
 
 def site_coordinates(xy, source: str | None = None) -> np.ndarray:
@@ -161,7 +165,7 @@ def triangulate(xy: np.ndarray) -> Triangulation | None:
     area[np.unique(tri.convex_hull)] = np.nan
     area[coplanar[:, 0]] = np.nan
     return Triangulation(indptr.astype(np.int64), indices.astype(np.int64),
-                         coplanar.astype(np.int64), area)
+                         coplanar.astype(np.int64), area, tri.simplices.astype(np.int64))
 
 
 def _voronoi_cell_areas(xy: np.ndarray, simplices: np.ndarray) -> np.ndarray:
