@@ -265,6 +265,32 @@ def demo(
 
 
 @app.command()
+def label(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet (CSV) to fill in; made when "
+                               "missing, continued when it exists."),
+    classes: str | None = typer.Option(None, "--classes", help="Classes to offer, comma "
+                                       "separated (default: those on the sheet)."),
+    port: int | None = typer.Option(None, "--port", min=1, max=65535,
+                                    help="Port on 127.0.0.1 (default: a free one)."),
+    seed: int = typer.Option(0, "--seed", help="Random seed of the suggestions."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Label images on a local web page; each label is written to the sheet at once."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.server import serve_labelling
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    names = [c.strip() for c in (classes or "").split(",") if c.strip()]
+    serve_labelling(paths, sheet, classes=names, port=port, cache_dir=cache, jobs=jobs,
+                    seed=seed, announce=lambda text: typer.echo(text))
+
+
+@app.command()
 def suggest(
     images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
     sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
@@ -305,9 +331,12 @@ def _human_summary(summary: dict) -> str:
     lines.append("  (persistence values below are in units of the spacing)")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
     for key, value in summary.items():
-        if key in skip or value is None:
+        if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
         text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        err = summary.get(key + "_err")
+        if err is not None:
+            text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")

@@ -28,11 +28,15 @@ class PatternRecord:
         Classic order measures (``psi6_global``, ``defect_fraction``, ...).
     source : str or None
         Path of the image file, for messages.
+    amounts : mapping of str to float
+        Physical amounts (:func:`topoclass.amounts.pattern_amounts`: spacing in nm, pore
+        density, vacancies, grains, disorder index, with errors); not classification features.
     """
 
     diagrams: Diagrams
     order: Mapping[str, float] = field(default_factory=dict)
     source: str | None = None
+    amounts: Mapping[str, float] = field(default_factory=dict)
 
 
 def barcode_summary(

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from topoclass.amounts import AMOUNT_KEYS
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
@@ -52,6 +53,11 @@ MEASURE_COLUMNS = (
     "nn_cv",
 )
 
+#: Physical amounts written after the measures (:data:`topoclass.amounts.AMOUNT_KEYS`; lengths
+#: in spacings or nm, areas in µm², each ``*_err`` the uncertainty of the amount before it). A
+#: cell is empty where the amount needs a pixel size the file did not record.
+AMOUNT_COLUMNS = AMOUNT_KEYS
+
 
 @dataclass
 class ScoreSummary:
@@ -71,7 +77,7 @@ def score_columns(classes: Sequence[str]) -> list[str]:
     return (
         ["image", "status", "predicted", "confidence"]
         + [f"p_{c}" for c in classes]
-        + ["unfamiliar", *MEASURE_COLUMNS, "sha256", "message"]
+        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "sha256", "message"]
     )
 
 
@@ -231,6 +237,10 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
     for key in MEASURE_COLUMNS:
         if key in measures:
             row[key] = measures[key]
+    for key in AMOUNT_COLUMNS:
+        value = record.amounts.get(key)
+        if value is not None and np.isfinite(value):
+            row[key] = value
     messages = list(result.notes)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
@@ -266,8 +276,8 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
     header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
     if header != columns:
         raise TopoclassError(
-            f"{out}: its columns do not match this model's classes; resume only with the model "
-            "that wrote it, or write to a new file"
+            f"{out}: its columns do not match this model's classes or this version's columns; "
+            "resume only with the model and version that wrote it, or write to a new file"
         )
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.

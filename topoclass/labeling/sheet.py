@@ -79,6 +79,10 @@ class LabelBook:
         return [(Path(os.path.abspath(base / k)), r["label"], r.get("group") or None)
                 for k, r in self._rows.items()]
 
+    def keys(self) -> list[str]:
+        """The sheet's image entries (relative paths), in sheet order."""
+        return list(self._rows)
+
     def key(self, image: str | Path) -> str:
         """How the sheet names an image: relative to the sheet's folder, with ``/``."""
         path = Path(image)
