@@ -16,6 +16,8 @@ from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 _FEATURE_HELP = "two-bar, order, topology or all"
+_ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
+               "true class for at most this share of images like the training set.")
 _CLASSIFIER_HELP = f"{', '.join(CLASSIFIERS)} (default {DEFAULT_CLASSIFIER})"
 
 app = typer.Typer(
@@ -126,6 +128,7 @@ def train(
     polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
     from topoclass.features import FeatureSettings
@@ -135,6 +138,7 @@ def train(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
         settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -179,6 +183,8 @@ def score(
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
     details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
                                 "at most this many images, the most doubtful first."),
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
@@ -201,7 +207,7 @@ def score(
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
-                           overwrite=overwrite, cache_dir=cache, progress=True)
+                           overwrite=overwrite, cache_dir=cache, progress=True, alpha=alpha)
     typer.echo(summary_text(summary))
     from topoclass.report import write_batch_report
 

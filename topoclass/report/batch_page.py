@@ -95,7 +95,9 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     base = scores_csv.parent
 
     ok = [r for r in rows if r.get("status") == "ok"]
-    unfamiliar = [r for r in ok if r.get("unfamiliar") == "yes"]
+    unfamiliar = [r for r in ok if _is_unfamiliar(r)]
+    # The review band's verdict (files from before it have no verdict column).
+    review = [r for r in ok if r.get("verdict") == "review"]
     failed = [r for r in rows if r.get("status") != "ok"]
     detail_ids = {id(r) for r in most_doubtful_first(ok, classes)[:max(details, 0)]}
     settings = FeatureSettings.from_model(model)
@@ -111,12 +113,13 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         if link:
             links[n] = link
 
-    # As in the scoring summary: an unfamiliar image's class is not counted with the rest.
-    counts = Counter(r.get("predicted", "") for r in ok if r.get("unfamiliar") != "yes")
+    # As in the scoring summary: an unfamiliar or review image's class is not counted.
+    counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
+                     if not _is_unfamiliar(r) and r.get("verdict") != "review")
     page = _report_page(
         scores_csv=scores_csv, rows=rows, classes=classes, measures=measures, counts=counts,
-        failed=failed, unfamiliar=unfamiliar, thumbs=thumbs, links=links, details=details,
-        thumbnails=thumbnails, model=model, caution=CAUTION,
+        failed=failed, unfamiliar=unfamiliar, review=review, thumbs=thumbs, links=links,
+        details=details, thumbnails=thumbnails, model=model, caution=CAUTION,
     )
     tmp = out_html.with_name(out_html.name + ".tmp")
     tmp.write_text(page, encoding="utf-8")
@@ -138,16 +141,19 @@ def most_doubtful_first(rows: list[dict], classes: list[str]) -> list[dict]:
     """Scored rows in the order they get detail views: the most doubtful first.
 
     Unfamiliar images come first (their probabilities rest on nothing like them in the
-    training set, so they are the ones to check by eye), then the others by increasing margin
-    between their two most probable classes (the closer a call, the nearer it is to flipping);
+    training set, so they are the ones to check by eye), then those the review band sends to
+    a person (``verdict`` "review"), then the others; within each, by increasing margin
+    between the two most probable classes (the closer a call, the nearer it is to flipping);
     ties keep the file order.
     """
     def margin(row: dict) -> float:
         p = sorted((_float(row.get(f"p_{c}")) for c in classes), reverse=True)
         return p[0] - p[1] if len(p) > 1 else 1.0
 
-    order = sorted(range(len(rows)), key=lambda k: (rows[k].get("unfamiliar") != "yes",
-                                                    margin(rows[k]), k))
+    def tier(row: dict) -> int:
+        return 0 if _is_unfamiliar(row) else 1 if row.get("verdict") == "review" else 2
+
+    order = sorted(range(len(rows)), key=lambda k: (tier(rows[k]), margin(rows[k]), k))
     return [rows[k] for k in order]
 
 
@@ -276,7 +282,12 @@ def _sort_value(value) -> str:
     return repr(v) if math.isfinite(v) else ""
 
 
-def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, thumbs,
+def _is_unfamiliar(row) -> bool:
+    return row.get("unfamiliar") == "yes" or row.get("verdict") == "unfamiliar"
+
+
+def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
+                 thumbs,
                  links, details, thumbnails, model, caution) -> str:
     colour = {c: CLASS_COLOURS[k % len(CLASS_COLOURS)] for k, c in enumerate(classes)}
     esc = html.escape
@@ -286,6 +297,14 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
                      f"{esc(str(getattr(model, 'classifier', '')))}</p>")
     parts.append(f"<p class='caution'><b>Caution.</b> {esc(caution)}</p>")
     n_ok = len(rows) - len(failed)
+    has_verdict = any("verdict" in r for r in rows)
+    if has_verdict:
+        from topoclass.scoring import BAND_NOTE
+
+        alpha = getattr(getattr(model, "review_band", None), "alpha_", None)
+        note = (BAND_NOTE.format(alpha=alpha) if alpha is not None else
+                BAND_NOTE.replace(" (error rate alpha = {alpha:g})", ""))
+        parts.append(f"<p class='note' id='band-note'>{esc(note)}</p>")
     summary = "".join(
         f"<tr><td><span class='dot' style='background:{colour[c]}'></span>{esc(c)}</td>"
         f"<td class='n'>{counts.get(c, 0)}</td></tr>" for c in classes
@@ -295,11 +314,13 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         f"<th>images</th></tr>{summary}"
         f"<tr><td>unfamiliar (check by eye; not counted above)</td>"
         f"<td class='n'>{len(unfamiliar)}</td></tr>"
-        f"<tr><td>failed</td><td class='n'>{len(failed)}</td></tr>"
+        + (f"<tr><td>review (more than one class cannot be ruled out; not counted above)</td>"
+           f"<td class='n'>{len(review)}</td></tr>" if has_verdict else "")
+        + f"<tr><td>failed</td><td class='n'>{len(failed)}</td></tr>"
         f"<tr><th>scored</th><th class='n'>{n_ok}</th></tr></table>"
     )
     index = {id(r): n for n, r in enumerate(rows)}
-    if failed or unfamiliar:
+    if failed or unfamiliar or review:
         items = []
         for r in failed:
             message = r.get("message", "") or "no message"
@@ -312,17 +333,26 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
             items.append(f"<li class='unfamiliar'><b>unfamiliar</b> {esc(r['image'])} "
                          f"(predicted {esc(r.get('predicted', ''))}){link}: "
                          f"{esc(r.get('message', ''))}</li>")
+        for r in review:
+            n = index[id(r)]
+            link = (f" — <a href='{esc(links[n])}'>detail</a>" if n in links else "")
+            plausible = ", ".join(f"{c} {_num(r.get(f'p_{c}'), 2)}" for c in classes)
+            items.append(f"<li class='review'><b>review</b> {esc(r['image'])} "
+                         f"(top class {esc(r.get('predicted', ''))}; {esc(plausible)}){link}"
+                         "</li>")
         parts.append("<h2>Look at these first</h2><ul id='attention'>" + "".join(items)
                      + "</ul>")
     notes = []
     if len(rows) > thumbnails:
         notes.append(f"thumbnails for the first {thumbnails} of {len(rows)} images")
     notes.append(f"detail views for at most {details} images, the most doubtful first "
-                 "(unfamiliar ones, then the smallest margin between the two likeliest "
-                 "classes)")
+                 "(unfamiliar ones, then those for review, then the smallest margin "
+                 "between the two likeliest classes)")
     parts.append("<h2>All images</h2><p class='note'>Click a column header to sort; click "
                  "again to reverse. " + "; ".join(notes).capitalize() + ".</p>")
     head = ["<th data-type='num'>#</th><th>image</th><th data-type='text'>predicted</th>"]
+    if has_verdict:
+        head += ["<th data-type='text'>verdict</th>"]
     head += [f"<th data-type='num' class='p'>p {esc(c)}</th>" for c in classes]
     head += ["<th data-type='text'>unfamiliar</th>"]
     head += [f"<th data-type='num'>{esc(m)}</th>" for m in measures]
@@ -336,6 +366,9 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
                  f"<td class='image'>{img}<span>{esc(Path(r['image']).name)}</span></td>"]
         pred = r.get("predicted", "") if ok else "failed"
         cells.append(f"<td data-value='{esc(pred)}'>{esc(pred)}</td>")
+        if has_verdict:
+            verdict = r.get("verdict", "") if ok else ""
+            cells.append(f"<td data-value='{esc(verdict)}'>{esc(verdict)}</td>")
         for c in classes:
             v = _sort_value(r.get(f"p_{c}")) if ok else ""
             width = f"{100 * float(v):.1f}" if v else "0"
@@ -356,7 +389,8 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         else:
             last = f"<span class='msg'>{esc(r.get('message', ''))}</span>"
         cells.append(f"<td>{last}</td>")
-        klass = "failed" if not ok else ("unfamiliar" if flag == "yes" else "")
+        klass = ("failed" if not ok else "unfamiliar" if _is_unfamiliar(r)
+                 else "review" if r.get("verdict") == "review" else "")
         body.append(f"<tr class='{klass}'>" + "".join(cells) + "</tr>")
     parts.append("<table id='scores' class='sortable'><thead><tr>" + "".join(head)
                  + "</tr></thead><tbody>" + "".join(body) + "</tbody></table>")
