@@ -185,6 +185,10 @@ def score(
                                           help="Refuse larger images (default 100 megapixels)."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
+                                "at most this many images, the most doubtful first."),
+    no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
+                                   "report` makes the page later)."),
 ) -> None:
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
@@ -207,7 +211,10 @@ def score(
     typer.echo(summary_text(summary))
     from topoclass.report import write_batch_report
 
-    typer.echo(f"report: {write_batch_report(out, model=trained, progress=True)}")
+    if not no_report:
+        page = write_batch_report(out, model=trained, details=details, jobs=jobs,
+                                  cache_dir=cache, progress=True)
+        typer.echo(f"report: {page}")
     if summary.scored == 0 and summary.skipped == 0:
         raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
                              "see the message column")
@@ -221,15 +228,19 @@ def report(
                                     "beside the CSV)."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
-    details: int = typer.Option(200, "--details", min=0,
-                                help="Detail views for at most this many images."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views for at most this "
+                                "many images, the most doubtful first."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder the scoring "
+                                      "used (its sites spare measuring the images again)."),
 ) -> None:
     """Rebuild the HTML report of a scores CSV (for example after a killed run)."""
     from topoclass.model import load_model
     from topoclass.report import write_batch_report
 
     trained = load_model(model_dir) if model_dir is not None else None
-    path = write_batch_report(scores_csv, out, model=trained, details=details, progress=True)
+    path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
+                              cache_dir=cache, progress=True)
     typer.echo(f"report: {path}")
 
 
