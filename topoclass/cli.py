@@ -325,6 +325,47 @@ def suggest(
             typer.echo(str(path))
 
 
+
+@app.command()
+def trend(
+    scores_csv: list[Path] = typer.Argument(..., help="scores.csv files, one per batch, in "
+                                            "acquisition order."),
+    out: Path = typer.Option(..., "--out", help="Folder for trend.png, trend.csv and limits."),
+    by: str | None = typer.Option(None, "--by", help="Order by this column (times or numbers), "
+                                  "or file-time for the image files' times; default: as read."),
+    reference: Path | None = typer.Option(None, "--reference", help="scores.csv of reference "
+                                          "images that set the control limits."),
+    baseline: int = typer.Option(20, "--baseline", min=2, help="Without --reference, the "
+                                 "first this many images set the limits."),
+    charts: str | None = typer.Option(None, "--charts", help="Comma-separated columns to "
+                                      "chart (default: amounts, then class probabilities)."),
+) -> None:
+    """Chart amounts and class probabilities over a run, with control limits and run rules."""
+    from topoclass.scoring import CAUTION
+    from topoclass.trend import (
+        TREND_CAUTION,
+        read_score_tables,
+        trend_table,
+        write_trend,
+    )
+
+    table = read_score_tables(scores_csv)
+    ref = read_score_tables([reference]) if reference is not None else None
+    chosen = [c.strip() for c in charts.split(",") if c.strip()] if charts else None
+    result = trend_table(table, charts=chosen, by=by, reference=ref, baseline=baseline)
+    paths = write_trend(result, out)
+    flagged = result.table[result.table["flagged"]]
+    source = "the reference set" if ref is not None else f"the first {baseline} images"
+    typer.echo(f"charted {len(result.table)} images, {len(result.charts)} charts; "
+               f"limits from {source}")
+    for _, row in flagged.iterrows():
+        fired = [f"{c}: {row[c + '_flags']}" for c in result.charts if row[c + "_flags"]]
+        typer.echo(f"  flagged {row['position']:>4} {row['image']}  ({'; '.join(fired)})")
+    for path in paths:
+        typer.echo(f"wrote {path}")
+    typer.echo("")
+    typer.echo("Caution: " + TREND_CAUTION + " " + CAUTION)
+
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]
     spacing = f"{summary['spacing_px']:.2f} px"
