@@ -94,7 +94,7 @@ def test_clicking_a_header_sorts_the_rows(browser, report_page):
 def test_detail_view_opens_with_its_pictures(browser, report_page):
     out, _ = report_page
     browser.get(out.resolve().as_uri())
-    link = browser.find_elements("css selector", "a[href^='report_files/']")[0]
+    link = browser.find_elements("css selector", "a[href^='scores_files/']")[0]
     browser.get(link.get_attribute("href"))
     widths = browser.execute_script(
         "return Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0);")

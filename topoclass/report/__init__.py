@@ -11,7 +11,12 @@ The last stage of the pipeline; it may read every stage to its left and draws wh
 """
 
 from topoclass.defects import DEFECT_COLUMNS, locate_defects, write_defects_csv
-from topoclass.report.batch_page import MAX_DETAILS, MAX_THUMBNAILS, write_batch_report
+from topoclass.report.batch_page import (
+    MAX_DETAILS,
+    MAX_THUMBNAILS,
+    batch_report_paths,
+    write_batch_report,
+)
 from topoclass.report.figures import (
     CLASS_COLOURS,
     COORDINATION_COLOURS,
@@ -34,7 +39,8 @@ from topoclass.report.importance import feature_family, feature_importance
 
 __all__ = [
     "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "MAX_DETAILS",
-    "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
+    "MAX_THUMBNAILS", "batch_report_paths", "diagram_and_barcode_figure", "feature_family",
+    "feature_importance",
     "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects",
     "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",
     "site_coordination", "write_batch_report", "write_defects_csv", "write_inspection_figures",
