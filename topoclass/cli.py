@@ -16,6 +16,8 @@ from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 _FEATURE_HELP = "two-bar, order, topology or all"
+_ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
+               "true class for at most this share of images like the training set.")
 _CLASSIFIER_HELP = f"{', '.join(CLASSIFIERS)} (default {DEFAULT_CLASSIFIER})"
 
 app = typer.Typer(
@@ -129,6 +131,7 @@ def train(
     polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
     from topoclass.features import FeatureSettings
@@ -138,6 +141,7 @@ def train(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
         settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -184,6 +188,8 @@ def score(
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
 ) -> None:
     """Score micrographs in batch with a probability for each class.
 
@@ -211,7 +217,7 @@ def score(
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
-                           overwrite=overwrite, cache_dir=cache, progress=True)
+                           overwrite=overwrite, cache_dir=cache, progress=True, alpha=alpha)
     typer.echo(summary_text(summary))
     typer.echo(f"report: {write_batch_report(out, model=trained, overwrite=True, progress=True)}")
     typer.echo(f"failed: {summary.total_failed} of {summary.given}")
@@ -271,6 +277,61 @@ def demo(
         typer.echo(f"report:     {report}")
 
 
+@app.command()
+def label(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet (CSV) to fill in; made when "
+                               "missing, continued when it exists."),
+    classes: str | None = typer.Option(None, "--classes", help="Classes to offer, comma "
+                                       "separated (default: those on the sheet)."),
+    port: int | None = typer.Option(None, "--port", min=1, max=65535,
+                                    help="Port on 127.0.0.1 (default: a free one)."),
+    seed: int = typer.Option(0, "--seed", help="Random seed of the suggestions."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Label images on a local web page; each label is written to the sheet at once."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.server import serve_labelling
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    names = [c.strip() for c in (classes or "").split(",") if c.strip()]
+    serve_labelling(paths, sheet, classes=names, port=port, cache_dir=cache, jobs=jobs,
+                    seed=seed, announce=lambda text: typer.echo(text))
+
+
+@app.command()
+def suggest(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
+    count: int = typer.Option(10, "--count", min=1, help="How many images to suggest."),
+    as_json: bool = typer.Option(False, "--json", help="Print a JSON list with the predicted "
+                                 "class, confidence and reason of each."),
+    seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same list."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Print the images worth labelling next, best first (one path per line)."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.ranking import suggest_from_sheet, suggestion_json
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    ranked, failures = suggest_from_sheet(paths, sheet, count=count, seed=seed, jobs=jobs,
+                                          cache_dir=cache, progress=True)
+    _echo_failures(failures)
+    if as_json:
+        typer.echo(json.dumps([suggestion_json(p, s) for p, s in ranked], indent=1))
+    else:
+        for path, _ in ranked:
+            typer.echo(str(path))
+
+
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]
     spacing = f"{summary['spacing_px']:.2f} px"
@@ -283,9 +344,12 @@ def _human_summary(summary: dict) -> str:
     lines.append("  (persistence values below are in units of the spacing)")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
     for key, value in summary.items():
-        if key in skip or value is None:
+        if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
         text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        err = summary.get(key + "_err")
+        if err is not None:
+            text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from topoclass.amounts import AMOUNT_KEYS
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
@@ -29,6 +30,13 @@ CAUTION = (
     "Probabilities are estimates learned from the labelled training set. Re-validate the model "
     "whenever the process, the instrument or the magnification changes. These scores support, "
     "and do not replace, the lab's own quality procedures."
+)
+
+#: Said wherever the review band is shown: what its guarantee covers and what it does not.
+BAND_NOTE = (
+    "The verdict is one class when the review band (error rate alpha = {alpha:g}) rules out "
+    "all others, 'review' when it cannot, 'unfamiliar' when no class fits; its coverage holds "
+    "only for images like the labelled training set."
 )
 
 # Images are scored in small chunks: one predict call per image costs the whole forest's
@@ -52,13 +60,18 @@ MEASURE_COLUMNS = (
     "nn_cv",
 )
 
+#: Physical amounts written after the measures (:data:`topoclass.amounts.AMOUNT_KEYS`; lengths
+#: in spacings or nm, areas in µm², each ``*_err`` the uncertainty of the amount before it). A
+#: cell is empty where the amount needs a pixel size the file did not record.
+AMOUNT_COLUMNS = AMOUNT_KEYS
+
 
 @dataclass
 class ScoreSummary:
     """What a scoring run did, and what the results file says of every image it was given.
 
-    ``scored + failed + skipped == given``; ``sum(per_class) + unfamiliar + total_failed ==
-    given`` (an image finished by an earlier run counts by its row in the file).
+    ``scored + failed + skipped == given``; ``sum(per_class) + review + unfamiliar +
+    total_failed == given`` (an image finished by an earlier run counts by its row in the file).
     """
 
     out: Path
@@ -70,9 +83,13 @@ class ScoreSummary:
     #: Images already in the file (``resume``), and how many of those rows are errors.
     skipped: int = 0
     skipped_failed: int = 0
-    #: Over every image given: unfamiliar ones, and the predicted classes of the others.
+    #: Over every image given: unfamiliar ones, ``review`` ones (more than one class cannot be
+    #: ruled out), and the verdicts (single classes) of the others.
     unfamiliar: int = 0
+    review: int = 0
     per_class: Counter = field(default_factory=Counter)
+    #: Error rate of the review band used.
+    alpha: float | None = None
 
     @property
     def total_failed(self) -> int:
@@ -85,21 +102,24 @@ class ScoreSummary:
                 self.skipped_failed += 1
             else:
                 self.failed += 1
+            return
+        if not earlier:
+            self.scored += 1
+        verdict = row.get("verdict", "")
+        if verdict == "unfamiliar":
+            self.unfamiliar += 1
+        elif verdict == "review":
+            self.review += 1
         else:
-            if not earlier:
-                self.scored += 1
-            if row.get("unfamiliar") == "yes":
-                self.unfamiliar += 1
-            else:
-                self.per_class[row.get("predicted", "")] += 1
+            self.per_class[verdict] += 1
 
 
 def score_columns(classes: Sequence[str]) -> list[str]:
     """The header of ``scores.csv`` for a model with these classes."""
     return (
-        ["image", "status", "predicted", "confidence"]
+        ["image", "status", "predicted", "confidence", "verdict"]
         + [f"p_{c}" for c in classes]
-        + ["unfamiliar", *MEASURE_COLUMNS, "sha256", "message"]
+        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "sha256", "message"]
     )
 
 
@@ -114,6 +134,7 @@ def score_images(
     overwrite: bool = False,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    alpha: float | None = None,
 ) -> ScoreSummary:
     """Score images with a trained model and append one row per image to ``out``.
 
@@ -137,13 +158,22 @@ def score_images(
         Replace an existing ``out``.
     cache_dir, progress
         As in :func:`topoclass.features.iter_records`.
+    alpha : float, optional
+        Error rate of the review band behind the ``verdict`` column; the model's own (set at
+        training) when omitted.
     """
     out = Path(out)
     classes = [str(c) for c in model.classes]
     columns = score_columns(classes)
     if settings is None:
         settings = FeatureSettings.from_model(model)
-    summary = ScoreSummary(out=out, given=len(paths))
+    band = getattr(model, "review_band", None)
+    if alpha is not None:
+        from topoclass.model.conformal import check_alpha
+
+        alpha = check_alpha(alpha)
+    summary = ScoreSummary(out=out, given=len(paths), alpha=alpha if alpha is not None
+                           else (band.alpha_ if band is not None else None))
     if out.exists() and not (resume or overwrite):
         raise TopoclassError(
             f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
@@ -173,7 +203,7 @@ def score_images(
                 description="scoring",
             )
             for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
-                rows = _score_rows(model, classes, chunk)
+                rows = _score_rows(model, classes, chunk, alpha)
                 fh.write("".join(_format_row(row, columns) for row in rows))
                 fh.flush()
                 os.fsync(fh.fileno())
@@ -198,11 +228,15 @@ def summary_text(summary: ScoreSummary) -> str:
     lines = [f"images {summary.given}: scored {summary.scored}, failed {summary.failed}{done}"]
     for cls, n in sorted(summary.per_class.items()):
         lines.append(f"  predicted {cls:<16} {n}")
-    lines.append(f"  unfamiliar {'':<15} {summary.unfamiliar} (unlike the training images, so "
-                 "not counted as any class; check them by eye)")
+    lines.append(f"  review {'':<19} {summary.review} (more than one class cannot be ruled "
+                 "out, so not counted as any class; look at them)")
+    lines.append(f"  unfamiliar {'':<15} {summary.unfamiliar} (unlike the training images or "
+                 "no class fits, so not counted as any class; check them by eye)")
     lines.append(f"  failed {'':<19} {summary.total_failed} (see the message column)")
     lines.append(f"results: {summary.out}")
     lines.append("")
+    if summary.alpha is not None:
+        lines.append(BAND_NOTE.format(alpha=summary.alpha))
     lines.append("Caution: " + CAUTION)
     return "\n".join(lines)
 
@@ -226,7 +260,8 @@ def _chunks(results, size: int, seconds: float):
         yield chunk
 
 
-def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[dict]:
+def _score_rows(model, classes: list[str], results: list[RecordResult],
+                alpha: float | None = None) -> list[dict]:
     """One row per result, in order; the measured images are predicted in one call."""
     rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
     ok = [i for i, r in enumerate(results) if r.ok]
@@ -241,8 +276,14 @@ def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[
     proba, unfamiliarity, reasons = model.assess(records)
     proba = np.asarray(proba, dtype=float)
     unfamiliarity = np.asarray(unfamiliarity, dtype=float)
+    verdicts = model.verdicts(proba, unfamiliarity, alpha=alpha)
     for k, i in enumerate(ok):
         rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
+        rows[i]["verdict"] = verdicts[k]
+        if verdicts[k] == "unfamiliar" and unfamiliarity[k] <= 1.0:
+            rows[i]["message"] = "; ".join(
+                m for m in ("no class fits at the review band's error rate; check by eye",
+                            rows[i]["message"]) if m)
     return rows
 
 
@@ -258,6 +299,10 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
     for key in MEASURE_COLUMNS:
         if key in measures:
             row[key] = measures[key]
+    for key in AMOUNT_COLUMNS:
+        value = record.amounts.get(key)
+        if value is not None and np.isfinite(value):
+            row[key] = value
     messages = list(result.notes)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
@@ -293,8 +338,8 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
     header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
     if header != columns:
         raise TopoclassError(
-            f"{out}: its columns do not match this model's classes; resume only with the model "
-            "that wrote it, or write to a new file"
+            f"{out}: its columns do not match this model's classes or this version's columns; "
+            "resume only with the model and version that wrote it, or write to a new file"
         )
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.
