@@ -15,6 +15,11 @@ import typer
 from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
+_REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of the frame, "
+                "e.g. 0,0,1,0.9); a data bar inside it is still found and left out.")
+_NO_AUTO_REGION_HELP = "Do not look for an instrument data bar to leave out."
+
+
 _FEATURE_HELP = "two-bar, order, topology or all"
 _ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
                "true class for at most this share of images like the training set.")
@@ -86,12 +91,15 @@ def inspect(
     ),
     max_pixels: int = typer.Option(100_000_000, "--max-pixels", min=1,
                                    help="Refuse larger images (decompression-bomb guard)."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
 ) -> None:
     """Find the lattice sites of one micrograph and report its order measures."""
     from topoclass.features import FeatureSettings
     from topoclass.inspection import inspect_image
 
-    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels)
+    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels,
+                               **_region_options(region, no_auto_region))
     summary = inspect_image(image, out=out, settings=settings)
     if as_json:
         typer.echo(json.dumps(summary, sort_keys=False))
@@ -132,16 +140,25 @@ def train(
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    zoom_range: str | None = typer.Option(
+        None, "--zoom-range", help="Also train on rescaled copies of every image at zoom "
+        "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
+    zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
+                                    help="Rescaled copies per image with --zoom-range."),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
+    from topoclass.augment import parse_zoom_range
     from topoclass.features import FeatureSettings
     from topoclass.workflow import train_from_labels
 
+    settings = FeatureSettings(polarity=polarity, **_region_options(region, no_auto_region))
     run = train_from_labels(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
-        settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
-        alpha=alpha,
+        settings=settings, jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -158,11 +175,15 @@ def validate(
                             help="Held-out label sheet or class folders."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
 ) -> None:
     """Measure a trained model on a held-out labelled set."""
     from topoclass.workflow import validate_from_labels
 
-    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True)
+    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True,
+                               overrides=_region_options(region, no_auto_region))
     _echo_failures(run.failures)
     m = run.metrics
     typer.echo(f"held-out images {m['n_samples']}: accuracy {m['accuracy']:.3f}, "
@@ -190,6 +211,9 @@ def score(
                                           help="Refuse larger images (default 100 megapixels)."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
     details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
                                 "at most this many images, the most doubtful first."),
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
@@ -220,6 +244,7 @@ def score(
     settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
+    settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True, alpha=alpha)
     typer.echo(summary_text(summary))
@@ -405,6 +430,18 @@ def _human_summary(summary: dict) -> str:
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+def _region_options(region: str | None, no_auto_region: bool) -> dict:
+    """The FeatureSettings fields the region options set (none when not given)."""
+    from topoclass.region import parse_region
+
+    options: dict = {}
+    if region is not None:
+        options["region"] = parse_region(region)
+    if no_auto_region:
+        options["auto_region"] = False
+    return options
 
 
 def _one_line(exc: BaseException) -> str:

@@ -119,7 +119,8 @@ def score_columns(classes: Sequence[str]) -> list[str]:
     return (
         ["image", "status", "predicted", "confidence", "verdict"]
         + [f"p_{c}" for c in classes]
-        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "sha256", "message"]
+        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "analysed_region", "sha256",
+           "message"]
     )
 
 
@@ -303,7 +304,9 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
         value = record.amounts.get(key)
         if value is not None and np.isfinite(value):
             row[key] = value
-    messages = list(result.notes)
+    if record.region is not None:  # x0,y0,x1,y1 as --region takes it
+        row["analysed_region"] = ",".join(str(v) for v in record.region)
+    messages = list(result.notes) + list(record.remarks)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
         messages.insert(0, f"unlike the training images ({why}); check by eye")

@@ -78,7 +78,7 @@ def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
     fig, ax, scale = _image_figure(image, legend_rows=1)
     coord = site_coordination(pattern)
     size = _marker_area(pattern.spacing * scale, 0.42)
-    handles = []
+    handles = _show_region(ax, pattern)
     for label, colour in COORDINATION_COLOURS.items():
         members = _coordination_class(coord) == label
         inner, outer = members & ~pattern.border, members & pattern.border
@@ -461,6 +461,28 @@ def _image_figure(image: np.ndarray, *, legend_rows: int = 1):
     ax.set_ylim(rows - 0.5, -0.5)
     ax.set_axis_off()
     return fig, ax, scale
+
+
+def _show_region(ax, pattern: SitePattern) -> list:
+    """Darken what was left out of the analysis and outline the analysed region.
+
+    Returns the legend handle for the outline (none when the whole frame was analysed).
+    """
+    from matplotlib.patches import Rectangle
+
+    rows, cols = pattern.shape
+    x0, y0, x1, y1 = pattern.frame
+    if (x0, y0, x1, y1) == (0, 0, cols, rows):
+        return []
+    outside = np.ones((rows, cols), dtype=bool)
+    outside[y0:y1, x0:x1] = False
+    veil = np.zeros((rows, cols, 4))
+    veil[outside] = (0.0, 0.0, 0.0, 0.6)
+    ax.imshow(veil, interpolation="nearest", extent=(-0.5, cols - 0.5, rows - 0.5, -0.5))
+    for colour, width, style in (("black", 2.4, "-"), ("white", 1.2, "--")):
+        ax.add_patch(Rectangle((x0 - 0.5, y0 - 0.5), x1 - x0, y1 - y0, fill=False,
+                               edgecolor=colour, linewidth=width, linestyle=style))
+    return [Line2D([], [], color="black", lw=1.2, ls="--", label="analysed region")]
 
 
 def _marker_area(diameter_px: float, fraction: float) -> float:
