@@ -497,7 +497,7 @@ class _Page(HTMLParser):
 def test_batch_report_is_self_contained_and_complete(tmp_path):
     scores, rows = scores_fixture(tmp_path / "batch")
     out = report.write_batch_report(scores, details=2)
-    assert out == scores.with_name("report.html")
+    assert out == scores.with_name("scores.html")  # named after the CSV
     page = _Page()
     page.feed(out.read_text(encoding="utf-8"))
     text = " ".join(" ".join(page.text).split())
@@ -522,13 +522,14 @@ def test_batch_report_is_self_contained_and_complete(tmp_path):
         assert f"p {c}" in page.head_cells
     assert "psi6_global" in page.head_cells and "defect_fraction" in page.head_cells
     # Detail views: bounded (2 here), the unfamiliar image first, with real pictures.
-    details = [h for h in page.links if h.startswith("report_files/")]
+    details = [h for h in page.links if h.startswith("scores_files/")]
     assert len(set(details)) == 2 and "detail views for at most 2 images" in text.lower()
     first = out.parent / details[0]
     assert first.parent.name.startswith("00000-")
     for name in ("micrograph.jpg", "defects.csv"):
         assert (first.parent / name).is_file()
     detail = first.read_text()
+    assert out.name == "scores.html"
     assert f"../../{out.name}" in detail and (first.parent / f"../../{out.name}").resolve() == out
     assert detail.count("<svg") >= 4 and "micrograph.jpg" in detail
 
@@ -583,7 +584,35 @@ def test_batch_report_of_a_partly_written_file(tmp_path):
     page = _Page()
     page.feed(out.read_text())
     assert page.body_rows == len(rows) - 1  # the cut last line is ignored
-    assert not [h for h in page.links if h.startswith("report_files/")]
+    assert not [h for h in page.links if h.startswith("r_files/")]
+
+
+def test_two_batches_in_one_folder_keep_a_page_each(tmp_path):
+    first, _ = scores_fixture(tmp_path / "batch", n_ok=2)
+    second = first.with_name("line-B.csv")
+    second.write_text(first.read_text().replace("membrane_1", "membrane_0"))
+    page_a = report.write_batch_report(first, details=2)
+    page_b = report.write_batch_report(second, details=2)
+    assert (page_a.name, page_b.name) == ("scores.html", "line-B.html")
+    assert (tmp_path / "batch" / "scores_files").is_dir()
+    assert (tmp_path / "batch" / "line-B_files").is_dir()
+    assert "line-B_files/" not in page_a.read_text() and "scores_files/" not in page_b.read_text()
+    # An existing page is refused, as the CSV is, unless told to replace it.
+    before = page_a.read_bytes()
+    with pytest.raises(TopoclassError, match="--overwrite"):
+        report.write_batch_report(first)
+    assert page_a.read_bytes() == before
+    # Replacing it with fewer detail views leaves no detail folder the page does not link.
+    report.write_batch_report(first, details=1, overwrite=True)
+    linked = {h.split("/")[1] for h in _links(page_a) if h.startswith("scores_files/")}
+    assert {f.name for f in (tmp_path / "batch" / "scores_files").iterdir()} == linked
+    assert len(linked) == 1
+
+
+def _links(path: Path) -> list[str]:
+    page = _Page()
+    page.feed(path.read_text(encoding="utf-8"))
+    return page.links
 
 
 def test_batch_report_refuses_a_missing_or_foreign_csv(tmp_path):
