@@ -57,7 +57,10 @@ def main() -> None:
     # With no arguments at all the help is what a new user needs, not an error.
     args = sys.argv[1:] or ["--help"]
     try:
-        app(args=args, prog_name="topoclass", standalone_mode=False)
+        # Outside standalone mode typer returns the code of a `typer.Exit` instead of exiting.
+        code = app(args=args, prog_name="topoclass", standalone_mode=False)
+        if isinstance(code, int) and code:
+            sys.exit(code)
     except TopoclassError as exc:
         typer.echo(f"error: {_one_line(exc)}", err=True)
         sys.exit(2)
@@ -200,7 +203,9 @@ def score(
     out: Path = typer.Option(..., "--out", help="Results CSV (one row per image)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
     resume: bool = typer.Option(False, "--resume", help="Keep finished rows; score the rest."),
-    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output "
+                                   "(the CSV and its report page)."),
+    strict: bool = typer.Option(False, "--strict", help="Exit with code 1 if any image failed."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
@@ -214,14 +219,23 @@ def score(
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
                                    "report` makes the page later)."),
 ) -> None:
-    """Score micrographs in batch with a probability for each class."""
+    """Score micrographs in batch with a probability for each class.
+
+    The last line printed is `failed: F of N`, for scripts.
+    """
     import dataclasses
 
     from topoclass.features import FeatureSettings
     from topoclass.images import collect_image_paths
     from topoclass.model import load_model
+    from topoclass.report import batch_report_paths, write_batch_report
     from topoclass.scoring import score_images, summary_text
 
+    page, _ = batch_report_paths(out)
+    if page.exists() and not (resume or overwrite):
+        # Refused before any work, like the CSV itself; --resume continues the same batch.
+        raise TopoclassError(f"{page}: the report page exists; pass --overwrite to replace it, "
+                             "--resume to continue its batch, or give --out another name")
     trained = load_model(model_dir)
     paths = collect_image_paths(inputs)
     if not paths:
@@ -234,23 +248,25 @@ def score(
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True, alpha=alpha)
     typer.echo(summary_text(summary))
-    from topoclass.report import write_batch_report
-
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
-                                  cache_dir=cache, progress=True)
+                                  cache_dir=cache, overwrite=True, progress=True)
         typer.echo(f"report: {page}")
-    if summary.scored == 0 and summary.skipped == 0:
-        raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
+    typer.echo(f"failed: {summary.total_failed} of {summary.given}")
+    if summary.total_failed == summary.given:
+        raise TopoclassError(f"{out}: none of the {summary.given} images could be scored; "
                              "see the message column")
+    if strict and summary.total_failed:
+        raise typer.Exit(1)
 
 
 @app.command()
 def report(
     scores_csv: Path = typer.Argument(..., metavar="SCORES_CSV",
                             help="Results CSV written by `topoclass score`."),
-    out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
-                                    "beside the CSV)."),
+    out: Path | None = typer.Option(None, "--out", help="HTML file (default: the CSV's name "
+                                    "with .html, e.g. scores.html)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing page."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
     details: int = typer.Option(200, "--details", min=0, help="Detail views for at most this "
@@ -265,7 +281,7 @@ def report(
 
     trained = load_model(model_dir) if model_dir is not None else None
     path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
-                              cache_dir=cache, progress=True)
+                              cache_dir=cache, overwrite=overwrite, progress=True)
     typer.echo(f"report: {path}")
 
 
@@ -276,6 +292,7 @@ def demo(
     jobs: int = typer.Option(2, "--jobs", min=1, help="Parallel workers."),
 ) -> None:
     """Run the whole job on invented anodic-alumina micrographs."""
+    from topoclass.report import batch_report_paths
     from topoclass.scoring import summary_text
     from topoclass.workflow import run_demo
 
@@ -290,7 +307,7 @@ def demo(
     typer.echo(f"CV report:  {run.training.directory / 'cv_report.md'}")
     typer.echo(f"validation: {run.validation.report}")
     typer.echo(f"scores:     {run.scores}")
-    report = run.scores.parent / "report.html"
+    report, _ = batch_report_paths(run.scores)
     if report.exists():
         typer.echo(f"report:     {report}")
 

@@ -233,7 +233,7 @@ def train_from_labels(
     if figures:
         from topoclass.report import write_training_figures
 
-        write_training_figures(model, directory, records, y, seed=seed)
+        write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
 
 
@@ -327,7 +327,7 @@ def run_demo(
     Makes a labelled training set and a separate "production" batch (other simulated membrane
     samples, another seed, plus a photograph of something else and a truncated file, as a real
     line delivers them), trains a model with grouped cross-validation, validates it on the
-    production batch's labels, and scores that batch into ``scores.csv`` with ``report.html``
+    production batch's labels, and scores that batch into ``scores.csv`` with ``scores.html``
     beside it.
     """
     from topoclass.images import collect_image_paths
@@ -364,7 +364,7 @@ def run_demo(
     )
     from topoclass.report import write_batch_report
 
-    write_batch_report(scores, model=training.model, progress=progress)
+    write_batch_report(scores, model=training.model, overwrite=True, progress=progress)
     return DemoRun(workdir, training, validation, scores, summary)
 
 
