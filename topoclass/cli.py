@@ -168,6 +168,10 @@ def score(
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
+    store: str | None = typer.Option(None, "--store", help="Also write every row to a results "
+                                     "store: a SQLite file or a postgresql:// URL."),
+    note: str = typer.Option("", "--note", help="Operator note kept with the batch in the "
+                             "store."),
 ) -> None:
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
@@ -185,8 +189,13 @@ def score(
     settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
+    recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
+                                              len(paths), note)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
-                           overwrite=overwrite, cache_dir=cache, progress=True)
+                           overwrite=overwrite, cache_dir=cache, progress=True,
+                           recorder=recorder)
+    if recorder is not None:
+        recorder.store.close()
     typer.echo(summary_text(summary))
     from topoclass.report import write_batch_report
 
@@ -194,13 +203,49 @@ def score(
     if summary.scored == 0 and summary.skipped == 0:
         raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
                              "see the message column")
+    if store_problem is not None or summary.store_error is not None:
+        from topoclass.errors import StoreError
+
+        raise StoreError(f"{store_problem or summary.store_error} (every row is in {out})")
+
+
+def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
+    """Open the store and start the batch; a store that cannot be used does not stop scoring."""
+    if store is None:
+        return None, None
+    from topoclass.errors import StoreError
+    from topoclass.store import model_sha256, open_store
+
+    try:
+        opened = open_store(store)
+    except StoreError as exc:
+        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        return None, exc
+    try:
+        recorder = opened.start_batch(
+            model_sha256=model_sha256(model_dir), model_path=str(Path(model_dir).absolute()),
+            classes=[str(c) for c in trained.classes], settings=settings,
+            output_csv=str(Path(out).absolute()), n_images=n_images, note=note)
+    except StoreError as exc:
+        opened.close()
+        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        return None, exc
+    return recorder, None
 
 
 @app.command()
 def report(
-    scores_csv: Path = typer.Argument(..., help="Results CSV written by `topoclass score`."),
+    scores_csv: Path | None = typer.Argument(None, help="Results CSV written by `topoclass "
+                                             "score` (or use --store)."),
     out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
                                     "beside the CSV)."),
+    store: str | None = typer.Option(None, "--store", help="Build the page from a results "
+                                     "store instead of a CSV (with --batch, --since, --model)."),
+    batch: int | None = typer.Option(None, "--batch", help="With --store: this batch only."),
+    since: str | None = typer.Option(None, "--since", help="With --store: rows scored since "
+                                     "this date (YYYY-MM-DD)."),
+    model_hash: str | None = typer.Option(None, "--model-hash", help="With --store: rows of "
+                                          "the model whose hash starts so."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
     details: int = typer.Option(200, "--details", min=0,
@@ -211,6 +256,14 @@ def report(
     from topoclass.report import write_batch_report
 
     trained = load_model(model_dir) if model_dir is not None else None
+    if store is not None:
+        if scores_csv is not None:
+            raise TopoclassError(f"report takes a scores CSV ({scores_csv}) or --store "
+                                 f"{store}, not both; give one of them")
+        out = out if out is not None else Path("report.html")
+        scores_csv = _scores_from_store(store, out, batch, since, model_hash)
+    elif scores_csv is None:
+        raise TopoclassError("report needs a scores CSV or --store STORE; give one of them")
     path = write_batch_report(scores_csv, out, model=trained, details=details, progress=True)
     typer.echo(f"report: {path}")
 
@@ -239,6 +292,69 @@ def demo(
     report = run.scores.parent / "report.html"
     if report.exists():
         typer.echo(f"report:     {report}")
+
+
+store_app = typer.Typer(no_args_is_help=True, help="Query the results store of many batches.")
+app.add_typer(store_app, name="store")
+
+
+@store_app.command("export")
+def store_export(
+    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    out: Path = typer.Option(..., "--out", help="File to write: .csv or .parquet."),
+    since: str | None = typer.Option(None, "--since", help="Rows scored since this date "
+                                     "(YYYY-MM-DD, UTC)."),
+    model_hash: str | None = typer.Option(None, "--model", help="Rows of the model whose hash "
+                                          "starts so (see `topoclass store batches`)."),
+    batch: int | None = typer.Option(None, "--batch", help="Rows of this batch only."),
+) -> None:
+    """Write stored results, one row per scored image, to a CSV or Parquet file."""
+    from topoclass.store import export_results, open_store, parse_since
+
+    when = parse_since(since)
+    with open_store(store) as opened:
+        n = export_results(opened, out, since=when, model=model_hash, batch=batch)
+    typer.echo(f"exported {n} rows to {out}")
+
+
+@store_app.command("batches")
+def store_batches(
+    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    last: int = typer.Option(20, "--last", min=1, help="Show this many newest batches."),
+) -> None:
+    """List the batches in a store, newest first."""
+    from topoclass.store import open_store
+
+    with open_store(store) as opened:
+        frame = opened.batches().head(last)
+    if frame.empty:
+        typer.echo(f"{opened.name}: no batches yet")
+        return
+    typer.echo(f"{'batch':>5}  {'started (UTC)':<19}  {'model':<12} {'rows':>6} {'failed':>6}"
+               f"  {'host':<16} note")
+    import pandas as pd
+
+    for r in frame.to_dict("records"):
+        started = r["started_utc"].strftime("%Y-%m-%d %H:%M:%S")
+        failed = "" if pd.isna(r["n_failed"]) else int(r["n_failed"])
+        state = " (unfinished)" if pd.isna(r["finished_utc"]) else ""
+        typer.echo(f"{r['batch']:>5}  {started:<19}  {r['model_sha256'][:12]:<12} "
+                   f"{r['rows']:>6} {failed:>6}  {r['host'][:16]:<16} {r['note']}{state}")
+
+
+def _scores_from_store(store, page: Path, batch, since, model_hash) -> Path:
+    """Query the store into a scores CSV beside the page, for the batch report."""
+    from topoclass.store import open_store, parse_since, write_scores_csv
+
+    target = page.with_name(page.stem + "_scores.csv")
+    with open_store(store) as opened:
+        n = write_scores_csv(opened, target, batch=batch, since=parse_since(since),
+                             model=model_hash)
+    if n == 0:
+        raise TopoclassError(f"{opened.name}: no stored rows match; `topoclass store batches` "
+                             "lists what it holds")
+    typer.echo(f"{n} rows from {opened.name} written to {target}")
+    return target
 
 
 def _human_summary(summary: dict) -> str:
