@@ -651,3 +651,18 @@ def test_collect_list_file_not_utf8(tmp_path):
     with pytest.raises(ImageReadError, match="UTF-8") as excinfo:
         collect_image_paths([listing])
     _assert_one_line_naming(excinfo, listing)
+
+
+@pytest.mark.parametrize("rational", [(0, 1), (123457, 0)])
+def test_garbled_resolution_tag_is_noted_not_dropped_silently(tmp_path, rational):
+    # TIFF 6.0: XResolution is a RATIONAL (two uint32, numerator then denominator); 0 pixels per
+    # unit or a zero denominator is no pixel size. The image is kept, the note says why.
+    path = tmp_path / "garbled.tif"
+    tifffile.imwrite(path, GREY16, resolution=(123457, 123457), resolutionunit="CENTIMETER")
+    raw = path.read_bytes()
+    good = struct.pack("<II", 123457, 1)
+    assert raw.count(good) == 2  # XResolution and YResolution
+    path.write_bytes(raw.replace(good, struct.pack("<II", *rational)))
+    m = _read_quiet(path)
+    assert m.pixel_size_nm is None
+    assert any("pixel-size tags are unreadable" in n and str(path) in n for n in m.notes)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy.spatial import Delaunay
+from scipy.spatial.distance import pdist, squareform
 
 from topoclass.errors import PatternError
 from topoclass.order import (
@@ -132,10 +133,57 @@ def test_clark_evans_hexagonal_packing():
     inner = np.all((xy > 2 * a) & (xy < 419 - 2 * a), axis=1)
     area = xy.shape[0] * np.sqrt(3.0) / 2.0 * a * a
     assert clark_evans(xy, area, focal=inner) == pytest.approx(2.1491, abs=5e-4)
-    # ... and through order_measures, where the density is n / frame area (1 %).
-    m = order_measures(_pattern(xy, (420, 420), a))
-    assert m["clark_evans_r"] == pytest.approx(2.1491, rel=0.01)
-    assert m["density_per_spacing2"] == pytest.approx(2 / np.sqrt(3.0), rel=0.01)
+    # Written out: every NN distance is a and the Poisson expectation 0.5 / sqrt(density) is
+    # 0.5 a sqrt(sqrt(3) / 2), so R = 2 / sqrt(sqrt(3) / 2) = 2.14914, the paper's value.
+    assert 2.0 / np.sqrt(np.sqrt(3.0) / 2.0) == pytest.approx(2.1491, abs=5e-5)
+
+
+@pytest.mark.parametrize("size", [64, 96, 128, 200])
+def test_clark_evans_of_a_perfect_lattice_on_small_frames(size):
+    # Clark & Evans 1954: 2.1491 for hexagonal packing, whatever frame the lattice is cut to.
+    # The density n / frame area scatters by several per cent here (a row of sites more or
+    # less); the interior sites' own cells do not.
+    rng = np.random.default_rng(size)
+    a = 15.0
+    for _ in range(5):
+        xy = hexagonal_lattice((size, size), a, angle=rng.uniform(0, 60),
+                               offset=tuple(rng.uniform(-a, a, 2)))
+        m = order_measures(_pattern(xy, (size, size), a))
+        assert m["clark_evans_r"] == pytest.approx(2.1491, abs=2e-4)
+
+
+def test_clark_evans_of_poisson_patterns_on_small_frames():
+    # Clark & Evans 1954: R = 1 for a Poisson pattern; SE = 0.26136 / sqrt(n) per realisation
+    # (n interior sites, about 150 here: 2.1 %), 200 realisations: 0.15 %; tolerance 0.6 %.
+    side = 160.0
+    spacing = side / np.sqrt(300)
+    cells, donnelly = [], []
+    for s in range(200):
+        p = _pattern(_poisson(300, side, 900 + s), (side, side), spacing, border_width=2.0)
+        cells.append(order_measures(p)["clark_evans_r"])
+        donnelly.append(order_measures(p, clark_evans_edge="donnelly")["clark_evans_r"])
+    assert np.mean(cells) == pytest.approx(1.0, abs=0.006)
+    # Donnelly 1978, all 300 sites (coefficients from memory): same target, smaller SE.
+    assert np.mean(donnelly) == pytest.approx(1.0, abs=0.006)
+
+
+def test_cell_areas_equal_scipy_voronoi():
+    # scipy.spatial.Voronoi (qhull) is the reference; ConvexHull gives each bounded cell's area.
+    from scipy.spatial import ConvexHull, Voronoi
+
+    from topoclass.sites import triangulate
+
+    xy = _poisson(800, 50.0, 5)
+    ours = triangulate(xy).cell_area
+    vor = Voronoi(xy)
+    ref = np.full(len(xy), np.nan)
+    for i, r in enumerate(vor.point_region):
+        region = vor.regions[r]
+        if region and -1 not in region:
+            ref[i] = ConvexHull(vor.vertices[region]).volume
+    np.testing.assert_array_equal(np.isnan(ours), np.isnan(ref))
+    ok = ~np.isnan(ref)
+    np.testing.assert_allclose(ours[ok], ref[ok], rtol=1e-10)
 
 
 def test_keys_and_interior_only():
@@ -144,12 +192,21 @@ def test_keys_and_interior_only():
     m = order_measures(p)
     assert set(REQUIRED) <= set(m) and tuple(m) == ORDER_MEASURE_KEYS
     assert all(isinstance(v, float) and np.isfinite(v) for v in m.values())
-    # Border sites have spurious hull neighbours; only interior sites are counted.
-    c = coordination(xy)
-    assert m["defect_fraction"] == pytest.approx(np.mean(c[~p.border] != 6))
+    # Border sites have spurious hull neighbours; only interior sites are counted. Reference:
+    # coordination from scipy's Delaunay triangles and NN distances from a dense distance
+    # matrix (scipy.spatial.distance), not this module's helpers.
+    tri = Delaunay(xy)
+    pairs = {tuple(sorted((int(i), int(j)))) for t in tri.simplices for i in t for j in t if i != j}
+    c = np.bincount(np.array(sorted(pairs)).ravel(), minlength=len(xy))
+    inner = ~p.border
+    assert m["defect_fraction"] == pytest.approx(np.mean(c[inner] != 6), abs=1e-12)
     assert np.mean(c[p.border] != 6) > m["defect_fraction"]
-    nn = nearest_neighbour_distances(xy, focal=~p.border)
-    assert m["nn_cv"] == pytest.approx(nn.std() / nn.mean())
+    d = squareform(pdist(xy))
+    np.fill_diagonal(d, np.inf)
+    nn = d[inner].min(axis=1)
+    np.testing.assert_allclose(nearest_neighbour_distances(xy, focal=inner), nn, rtol=1e-12)
+    assert m["nn_cv"] == pytest.approx(nn.std() / nn.mean(), rel=1e-12)
+    assert m["nn_mean_per_spacing"] == pytest.approx(nn.mean() / 10.0, rel=1e-12)
 
 
 def test_bad_patterns_get_a_pattern_error_naming_the_file():

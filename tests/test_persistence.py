@@ -84,6 +84,36 @@ def test_one_vacancy_gives_one_bar_from_a_to_sqrt3_a(exclude_border):
     np.testing.assert_allclose(d.bars_in_pixels(1), d.in_pixels(1))
 
 
+@pytest.mark.parametrize(
+    ("offsets", "death"),
+    [
+        # di-vacancy: two adjacent sites missing; the widest triangle over the hole still has
+        # sides a, sqrt(3) a, sqrt(3) a, so the loop dies at sqrt(3) a, like a single vacancy.
+        ([(0.0, 0.0), (1.0, 0.0)], SQRT3),
+        # tri-vacancy (three mutually adjacent) and three in a row: the loop around them is
+        # filled only when edges of length 2 a appear.
+        ([(0.0, 0.0), (1.0, 0.0), (0.5, SQRT3 / 2)], 2.0),
+        ([(0.0, 0.0), (1.0, 0.0), (2.0, 0.0)], 2.0),
+    ],
+)
+def test_multi_vacancy_death_scales_match_dense_ripser(offsets, death):
+    # Elementary geometry (above), checked against dense ripser on the same cloud.
+    a = 1.0
+    xy = hexagonal_lattice((14, 14), a) - 7.0
+    centre = xy[np.argmin(np.hypot(*xy.T))]
+    gone = np.zeros(len(xy), dtype=bool)
+    for dx, dy in offsets:
+        gone |= np.hypot(*(xy - centre - (dx, dy)).T) < 1e-6
+    assert gone.sum() == len(offsets)
+    xy = xy[~gone]
+    dense = ripser(xy, maxdim=1)["dgms"][1]
+    dense = dense[dense[:, 1] - dense[:, 0] > F32]
+    ours = rips_persistence(xy, max_scale=2.5)["h1"]
+    ours = ours[ours[:, 1] - ours[:, 0] > F32]
+    np.testing.assert_allclose(dense, [[1.0, death]], rtol=F32)
+    np.testing.assert_allclose(ours, dense, rtol=F32)
+
+
 def test_square_lattice_bars_from_a_to_sqrt2_a():
     # Elementary geometry of the square: a 4-cycle of sides a is born at a and filled when the
     # diagonals (sqrt(2) a) appear; each unit square is one independent loop.

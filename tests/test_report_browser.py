@@ -6,39 +6,17 @@ Install on Debian: ``apt-get install -y chromium chromium-driver`` and ``pip ins
 
 from __future__ import annotations
 
-import shutil
-
 import pytest
+from _browser import chromium_driver, severe_messages
 from _report_data import CLASSES, scores_fixture
 
 from topoclass.report import write_batch_report
 
-webdriver = pytest.importorskip("selenium.webdriver", reason="selenium is not installed "
-                                "(pip install selenium)")
-
-_BROWSERS = ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable")
-_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-          "--disable-component-update", "--disable-sync", "--no-first-run")
-
 
 @pytest.fixture(scope="module")
 def browser():
-    binary = next((shutil.which(b) for b in _BROWSERS if shutil.which(b)), None)
-    driver_path = shutil.which("chromedriver")
-    if binary is None or driver_path is None:
-        pytest.skip("no chromium/chrome binary or chromedriver on PATH "
-                    "(apt-get install -y chromium chromium-driver)")
-    from selenium.webdriver.chrome.service import Service
-
-    options = webdriver.ChromeOptions()
-    options.binary_location = binary
-    for flag in _FLAGS:
-        options.add_argument(flag)
-    options.add_argument("--window-size=1300,1000")
-    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
-    driver = webdriver.Chrome(options=options, service=Service(driver_path))
-    yield driver
-    driver.quit()
+    with chromium_driver() as driver:
+        yield driver
 
 
 @pytest.fixture(scope="module")
@@ -47,15 +25,11 @@ def report_page(tmp_path_factory):
     return write_batch_report(scores, details=2), rows
 
 
-def _severe(driver) -> list[dict]:
-    return [e for e in driver.get_log("browser") if e.get("level") == "SEVERE"]
-
-
 def test_report_loads_without_errors_and_every_image_shows(browser, report_page):
     out, rows = report_page
     browser.get(out.resolve().as_uri())
     assert browser.title == "topoclass batch report"
-    assert _severe(browser) == []
+    assert severe_messages(browser) == []
     images = browser.find_elements("css selector", "img")
     assert len(images) == len(rows) - 1  # every scored image has a thumbnail
     widths = browser.execute_script(
@@ -88,7 +62,7 @@ def test_clicking_a_header_sorts_the_rows(browser, report_page):
     assert [int(v) for v in browser.execute_script(
         "return Array.from(document.querySelectorAll('#scores tbody tr'))"
         ".map(r => r.cells[0].dataset.value);")] == list(range(len(rows)))
-    assert _severe(browser) == []
+    assert severe_messages(browser) == []
 
 
 def test_detail_view_opens_with_its_pictures(browser, report_page):
@@ -99,4 +73,4 @@ def test_detail_view_opens_with_its_pictures(browser, report_page):
     widths = browser.execute_script(
         "return Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0);")
     assert len(widths) == 3 and all(w > 300 for w in widths), widths
-    assert _severe(browser) == []
+    assert severe_messages(browser) == []

@@ -77,6 +77,33 @@ def test_resume_skips_done_and_rescores_changed(small_model, batch, feature_cach
     assert len(rows) == len(paths)
 
 
+def test_resume_finds_rows_however_the_path_is_spelled(small_model, batch, feature_cache,
+                                                       tmp_path, monkeypatch):
+    monkeypatch.chdir(tmp_path)
+    names = sorted(p.name for p in batch.iterdir())[:4]
+    relative = [Path("batch") / n for n in names]
+    out = tmp_path / "scores.csv"
+    score_images(small_model.model, relative[:2], out, cache_dir=feature_cache)
+    # The same files, absolute this time: the two finished ones are not scored again.
+    absolute = [(tmp_path / p).resolve() for p in relative]
+    summary = score_images(small_model.model, absolute, out, resume=True,
+                           cache_dir=feature_cache)
+    assert summary.skipped == 2 and summary.scored + summary.failed == 2
+    # And through a symlink to the folder: every image is already done.
+    (tmp_path / "linked").symlink_to(batch, target_is_directory=True)
+    linked = [tmp_path / "linked" / n for n in names]
+    summary = score_images(small_model.model, linked, out, resume=True, cache_dir=feature_cache)
+    assert summary.skipped == 4 and summary.scored + summary.failed == 0
+    rows = read_scores(out)
+    assert len(rows) == 4  # one row per image, no duplicates
+    assert len({Path(r["image"]).resolve() for r in rows}) == 4
+    # A copy with the same bytes under another name is another image: it gets its own row.
+    copy = tmp_path / "copy_of_first.png"
+    shutil.copy(absolute[0], copy)
+    summary = score_images(small_model.model, [copy], out, resume=True, cache_dir=feature_cache)
+    assert summary.skipped == 0 and len(read_scores(out)) == 5
+
+
 def test_same_inputs_give_identical_bytes_whatever_the_jobs(small_model, batch, tmp_path):
     paths = collect_image_paths([batch])[:8]
     one, two = tmp_path / "one.csv", tmp_path / "two.csv"

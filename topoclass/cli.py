@@ -20,6 +20,9 @@ _CLASSIFIER_HELP = f"{', '.join(CLASSIFIERS)} (default {DEFAULT_CLASSIFIER})"
 
 app = typer.Typer(
     add_completion=False,
+    # Plain help: the rich layout shows a value placeholder even for flags, which invites
+    # `--json true`.
+    rich_markup_mode=None,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
     help="Sort micrographs of self-organised hexagonal patterns by kind and amount of disorder.",
@@ -44,8 +47,10 @@ def _root(
 
 def main() -> None:
     """Entry point: user errors become one line on stderr and exit code 2, never a traceback."""
+    # With no arguments at all the help is what a new user needs, not an error.
+    args = sys.argv[1:] or ["--help"]
     try:
-        app(standalone_mode=False)
+        app(args=args, prog_name="topoclass", standalone_mode=False)
     except TopoclassError as exc:
         typer.echo(f"error: {_one_line(exc)}", err=True)
         sys.exit(2)
@@ -57,18 +62,17 @@ def main() -> None:
     except KeyboardInterrupt:
         typer.echo("interrupted", err=True)
         sys.exit(130)
-    except Exception as exc:  # click usage errors arrive here in non-standalone mode
-        import click
-
-        if isinstance(exc, click.ClickException):
-            exc.show()
-            sys.exit(exc.exit_code)
-        raise
+    except typer.TyperException as exc:
+        # typer's own usage errors (missing argument, unknown option or command, bad value);
+        # typer re-exports their base class, so no separate package is imported for them.
+        typer.echo(f"topoclass: error: {_usage_line(exc)}", err=True)
+        sys.exit(exc.exit_code)
 
 
 @app.command()
 def inspect(
-    image: Path = typer.Argument(..., help="Micrograph file (PNG, JPEG or TIFF)."),
+    image: Path = typer.Argument(..., metavar="IMAGE",
+                            help="Micrograph file (PNG, JPEG or TIFF)."),
     out: Path | None = typer.Option(None, "--out", help="Folder for sites.csv and pictures."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object instead of text."),
     polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
@@ -92,7 +96,8 @@ def inspect(
 
 @app.command()
 def synth(
-    out_dir: Path = typer.Argument(..., help="Folder to write images, labels.csv and truth."),
+    out_dir: Path = typer.Argument(..., metavar="OUT_DIR",
+                            help="Folder to write images, labels.csv and truth."),
     per_class: int = typer.Option(8, "--per-class", min=1, help="Images per class."),
     size: int = typer.Option(384, "--size", min=64, help="Image side in pixels."),
     seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same images."),
@@ -106,13 +111,15 @@ def synth(
 
 @app.command()
 def train(
-    labels: Path = typer.Argument(..., help="Label sheet (CSV image,label[,group]) or folders."),
+    labels: Path = typer.Argument(..., metavar="LABELS",
+                            help="Label sheet (CSV image,label[,group]) or folders."),
     model: Path | None = typer.Option(None, "--model", help="Model folder to write."),
     features: str = typer.Option("all", "--features", help="Feature set: " + _FEATURE_HELP),
     classifier: str = typer.Option(DEFAULT_CLASSIFIER, "--classifier", help="Classifier: "
                                    + _CLASSIFIER_HELP),
     cv: int = typer.Option(5, "--cv", min=2, help="Cross-validation folds."),
-    calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid or isotonic."),
+    calibration: str = typer.Option("auto", "--calibration", help="auto, sigmoid, temperature "
+                                    "or isotonic (auto picks from the class sizes)."),
     select: bool = typer.Option(False, "--select", help="Compare feature sets and classifiers "
                                 "by grouped CV and keep the best."),
     seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same model."),
@@ -138,8 +145,10 @@ def train(
 
 @app.command()
 def validate(
-    model_dir: Path = typer.Argument(..., help="Model folder written by `topoclass train`."),
-    labels: Path = typer.Argument(..., help="Held-out label sheet or class folders."),
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR",
+                            help="Model folder written by `topoclass train`."),
+    labels: Path = typer.Argument(..., metavar="LABELS",
+                            help="Held-out label sheet or class folders."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
 ) -> None:
@@ -159,8 +168,10 @@ def validate(
 
 @app.command()
 def score(
-    model_dir: Path = typer.Argument(..., help="Model folder written by `topoclass train`."),
-    inputs: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR",
+                            help="Model folder written by `topoclass train`."),
+    inputs: list[Path] = typer.Argument(..., metavar="INPUT",
+                            help="Images, folders or text files of paths."),
     out: Path = typer.Option(..., "--out", help="Results CSV (one row per image)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
     resume: bool = typer.Option(False, "--resume", help="Keep finished rows; score the rest."),
@@ -235,12 +246,14 @@ def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
 
 @app.command()
 def report(
-    scores_csv: Path | None = typer.Argument(None, help="Results CSV written by `topoclass "
-                                             "score` (or use --store)."),
+    scores_csv: Path | None = typer.Argument(None, metavar="[SCORES_CSV]",
+                                             help="Results CSV written by `topoclass score` "
+                                             "(or use --store)."),
     out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
                                     "beside the CSV)."),
     store: str | None = typer.Option(None, "--store", help="Build the page from a results "
-                                     "store instead of a CSV (with --batch, --since, --model)."),
+                                     "store instead of a CSV (see --batch, --since, "
+                                     "--model-hash)."),
     batch: int | None = typer.Option(None, "--batch", help="With --store: this batch only."),
     since: str | None = typer.Option(None, "--since", help="With --store: rows scored since "
                                      "this date (YYYY-MM-DD)."),
@@ -292,6 +305,61 @@ def demo(
     report = run.scores.parent / "report.html"
     if report.exists():
         typer.echo(f"report:     {report}")
+
+
+@app.command()
+def label(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet (CSV) to fill in; made when "
+                               "missing, continued when it exists."),
+    classes: str | None = typer.Option(None, "--classes", help="Classes to offer, comma "
+                                       "separated (default: those on the sheet)."),
+    port: int | None = typer.Option(None, "--port", min=1, max=65535,
+                                    help="Port on 127.0.0.1 (default: a free one)."),
+    seed: int = typer.Option(0, "--seed", help="Random seed of the suggestions."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Label images on a local web page; each label is written to the sheet at once."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.server import serve_labelling
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    names = [c.strip() for c in (classes or "").split(",") if c.strip()]
+    serve_labelling(paths, sheet, classes=names, port=port, cache_dir=cache, jobs=jobs,
+                    seed=seed, announce=lambda text: typer.echo(text))
+
+
+@app.command()
+def suggest(
+    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
+    count: int = typer.Option(10, "--count", min=1, help="How many images to suggest."),
+    as_json: bool = typer.Option(False, "--json", help="Print a JSON list with the predicted "
+                                 "class, confidence and reason of each."),
+    seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same list."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+) -> None:
+    """Print the images worth labelling next, best first (one path per line)."""
+    from topoclass.images import collect_image_paths
+    from topoclass.labeling.ranking import suggest_from_sheet, suggestion_json
+
+    paths = collect_image_paths(images)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    ranked, failures = suggest_from_sheet(paths, sheet, count=count, seed=seed, jobs=jobs,
+                                          cache_dir=cache, progress=True)
+    _echo_failures(failures)
+    if as_json:
+        typer.echo(json.dumps([suggestion_json(p, s) for p, s in ranked], indent=1))
+    else:
+        for path, _ in ranked:
+            typer.echo(str(path))
 
 
 store_app = typer.Typer(no_args_is_help=True, help="Query the results store of many batches.")
@@ -382,9 +450,22 @@ def _one_line(exc: BaseException) -> str:
     return " ".join(str(exc).split())
 
 
+def _usage_line(exc: typer.TyperException) -> str:
+    """One line: what was wrong and which help page says what the command takes."""
+    text = " ".join(exc.format_message().split()).rstrip(".")
+    if text.startswith("Got unexpected extra argument"):
+        text += " (flags such as --json or --resume take no value)"
+    ctx = getattr(exc, "ctx", None)
+    command = ctx.command_path if ctx is not None else "topoclass"
+    return f"{text}; run '{command} --help' to see what it takes"
+
+
 def _echo_failures(failures) -> None:
     for r in failures:
         typer.echo(f"skipped: {r.error}", err=True)
+    if failures:
+        typer.echo(f"skipped {len(failures)} image(s) that could not be measured (listed above)",
+                   err=True)
 
 
 def _cv_summary(model) -> str:

@@ -15,6 +15,7 @@ import json
 import os
 import tempfile
 import warnings
+import zipfile
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -27,12 +28,12 @@ from topoclass._progress import progress_bar
 from topoclass.errors import TopoclassError
 from topoclass.images import Micrograph, read_micrograph
 from topoclass.order import order_measures
-from topoclass.persistence import Diagrams, pattern_persistence
+from topoclass.persistence import DEFAULT_MAX_SCALE, Diagrams, pattern_persistence
 from topoclass.records import PatternRecord
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 2
+_CACHE_LAYOUT = 3
 
 
 @dataclass(frozen=True)
@@ -52,7 +53,7 @@ class FeatureSettings:
     """
 
     polarity: str = "auto"
-    max_scale: float = 2.5
+    max_scale: float = DEFAULT_MAX_SCALE
     pixel_size_nm: float | None = None
     max_pixels: int = 100_000_000
 
@@ -173,9 +174,9 @@ def iter_records(
         Image files.
     settings : FeatureSettings, optional
         Site-finding and persistence settings (defaults when omitted).
-    cache_dir : path-like or None
-        Folder of the on-disk cache; ``None`` uses :func:`default_cache_dir`. Pass ``False``-y
-        ``""`` to disable caching.
+    cache_dir : path-like, None or False
+        Folder of the on-disk cache; ``None`` uses :func:`default_cache_dir`; ``False`` (or
+        ``""``) turns the cache off.
     jobs : int
         Worker processes (joblib); 1 runs in this process. Each worker's BLAS/OpenMP pools are
         limited to one thread so that ``jobs`` workers do not oversubscribe the cores.
@@ -184,9 +185,7 @@ def iter_records(
     """
     settings = settings or FeatureSettings()
     paths = [Path(p) for p in paths]
-    if cache_dir is None:
-        cache_dir = default_cache_dir()
-    cache = _RecordCache(Path(cache_dir), settings) if cache_dir != "" else None
+    cache = _cache_for(cache_dir, settings)
     work = _Worker(settings, cache)
     if jobs == 1 or len(paths) <= 1:
         results: Iterator[RecordResult] = (work(p) for p in paths)
@@ -234,10 +233,9 @@ class _Worker:
             try:
                 record = measure_pattern(path, self.settings)
             except TopoclassError as exc:
+                # Only input errors become a failed result (the readers turn every decoder
+                # failure into ImageReadError); anything else is a bug and must stop the run.
                 return RecordResult(path, sha, None, " ".join(str(exc).split()))
-            except Exception as exc:  # a bug or an unforeseen file: report it, keep going
-                message = f"{path}: unexpected {type(exc).__name__}: {exc}"
-                return RecordResult(path, sha, None, " ".join(message.split()))
         notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
         if self.cache is not None:
             self.cache.put(sha, record, notes)
@@ -249,6 +247,16 @@ def _limited(work: Callable, path: Path) -> RecordResult:
 
     with threadpool_limits(limits=1):
         return work(path)
+
+
+def _cache_for(cache_dir, settings: FeatureSettings) -> _RecordCache | None:
+    if cache_dir is False or (isinstance(cache_dir, str) and cache_dir == ""):
+        return None
+    if cache_dir is None:
+        cache_dir = default_cache_dir()
+    if not isinstance(cache_dir, str | os.PathLike):
+        raise TypeError(f"cache_dir must be a path, None or False, not {cache_dir!r}")
+    return _RecordCache(Path(cache_dir), settings)
 
 
 class _RecordCache:
@@ -265,19 +273,25 @@ class _RecordCache:
             with np.load(file, allow_pickle=False) as data:
                 notes = tuple(str(n) for n in data["notes"])
                 return _record_from_arrays(data, str(path)), notes
-        except Exception:  # a damaged entry is recomputed, never trusted
+        except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile):
+            # a damaged or older entry is recomputed, never trusted
             return None
 
     def put(self, sha: str, record: PatternRecord, notes: tuple[str, ...] = ()) -> None:
+        # Write to a temporary file and rename, so a concurrent reader never sees half a file;
+        # a failed write (disk full, read-only) removes its temporary file and is otherwise
+        # ignored: the cache is an optimisation and must not fail the batch.
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
-            # Write to a temporary file and rename, so a concurrent reader never sees half a file.
             fd, tmp = tempfile.mkstemp(dir=self.folder, suffix=".npz.tmp")
+        except OSError:
+            return
+        try:
             with os.fdopen(fd, "wb") as fh:
                 np.savez(fh, notes=np.array(notes, dtype=str), **_record_to_arrays(record))
             os.replace(tmp, self.folder / f"{sha}.npz")
         except OSError:
-            pass  # the cache is an optimisation; a read-only disk must not fail the batch
+            Path(tmp).unlink(missing_ok=True)
 
 
 def _record_to_arrays(record: PatternRecord) -> dict[str, np.ndarray]:

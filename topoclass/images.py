@@ -326,11 +326,18 @@ def _check_extent(path: Path, page, file_size: int) -> None:
 
 
 def _tiff_pixel_size_or_none(page, tif, notes: list[str], path: Path) -> float | None:
-    # A garbled calibration must not cost the user the image: the pixel size is optional.
+    # A garbled calibration must not cost the user the image: the pixel size is optional, but
+    # the row says it was dropped, so a missing size in nm is never a silent surprise.
     try:
         return _tiff_pixel_size(page, tif, notes, path)
-    except Exception:  # noqa: BLE001
+    except _GarbledCalibration as why:
+        notes.append(f"{path}: its pixel-size tags are unreadable ({why}); the pixel size is "
+                     "left unknown (give it with the pixel-size setting if needed)")
         return None
+
+
+class _GarbledCalibration(Exception):
+    """A TIFF resolution tag is present but cannot be read as a pixel size."""
 
 
 def _tiff_pixel_size(page, tif, notes: list[str], path: Path) -> float | None:
@@ -340,18 +347,24 @@ def _tiff_pixel_size(page, tif, notes: list[str], path: Path) -> float | None:
     try:
         num, den = tags["XResolution"].value
         per_unit = num / den
-    except (TypeError, ValueError, ZeroDivisionError):
-        return None
+    except (TypeError, ValueError, ZeroDivisionError) as exc:
+        raise _GarbledCalibration(f"XResolution {tags['XResolution'].value!r}") from exc
     if not np.isfinite(per_unit) or per_unit <= 0:
-        return None
-    unit = int(tags["ResolutionUnit"].value) if "ResolutionUnit" in tags else 2  # TIFF default
+        raise _GarbledCalibration(f"XResolution {num}/{den}")
+    try:
+        unit = int(tags["ResolutionUnit"].value) if "ResolutionUnit" in tags else 2  # default
+    except (TypeError, ValueError) as exc:
+        raise _GarbledCalibration(f"ResolutionUnit {tags['ResolutionUnit'].value!r}") from exc
     if unit == 2:
         nm_per_unit = 25.4e6  # inch
     elif unit == 3:
         nm_per_unit = 1e7  # centimetre
     else:
         # No unit in the tags; ImageJ / Fiji put it in their own metadata (pixels per unit).
-        meta = tif.imagej_metadata or {}
+        try:
+            meta = tif.imagej_metadata or {}
+        except (ValueError, TypeError, KeyError) as exc:
+            raise _GarbledCalibration("ImageJ metadata") from exc
         nm_per_unit = _NM_PER_UNIT.get(str(meta.get("unit", "")).strip().lower())
         if nm_per_unit is None:
             return None
@@ -368,7 +381,8 @@ def _tiff_pixel_size(page, tif, notes: list[str], path: Path) -> float | None:
                     "the horizontal size is used"
                 )
         except (TypeError, ValueError, ZeroDivisionError):
-            pass
+            notes.append(f"{path}: its YResolution tag is unreadable; the horizontal pixel "
+                         "size is used")
     return float(size)
 
 

@@ -73,7 +73,8 @@ class LabelSet:
 
 
 def read_labels(
-    source: str | Path, *, n_folds: int | None = None, check_files: bool = True
+    source: str | Path, *, n_folds: int | None = None, check_files: bool = True,
+    partial: bool = False,
 ) -> LabelSet:
     """Read and check a label sheet.
 
@@ -86,6 +87,10 @@ def read_labels(
         the sheet has groups) so that each cross-validation fold can hold one.
     check_files : bool
         Check that every image file exists.
+    partial : bool
+        Read a sheet that is still being filled in (as the labelling page writes it): a
+        header with no rows, a single class and columns other than ``image,label,group``
+        (kept by the page, ignored here) are fine. Every row is still checked.
 
     Returns
     -------
@@ -103,12 +108,12 @@ def read_labels(
     if source.is_dir():
         images, labels, groups, digest, problems = _read_folder(source)
     elif source.is_file():
-        images, labels, groups, digest, problems = _read_csv(source, check_files)
+        images, labels, groups, digest, problems = _read_csv(source, check_files, partial)
     else:
         _fail(source, [f"not found, give a CSV file ({','.join(REQUIRED_COLUMNS)}[,group]) "
                        "or a folder with one sub-folder per class"])
     if images:
-        problems += _check_classes(labels, groups, n_folds)
+        problems += _check_classes(labels, groups, n_folds, partial)
     if problems:
         _fail(source, sorted(problems, key=_line_of))
     return LabelSet(
@@ -156,7 +161,7 @@ def write_labels(
 # --------------------------------------------------------------------------- CSV
 
 
-def _read_csv(source: Path, check_files: bool):
+def _read_csv(source: Path, check_files: bool, partial: bool = False):
     try:
         raw = source.read_bytes()
     except OSError as exc:
@@ -187,7 +192,7 @@ def _read_csv(source: Path, check_files: bool):
                 continue
             if header is None:
                 header = [cell.lower() for cell in cells]
-                problems += _check_header(header)
+                problems += _check_header(header, partial)
                 if problems:
                     break
                 columns = {name: header.index(name) for name in header}
@@ -199,7 +204,7 @@ def _read_csv(source: Path, check_files: bool):
     if header is None and not problems:
         problems.append("the sheet is empty, add a header line image,label and one line per "
                         "image")
-    elif not problems and not images:
+    elif not problems and not images and not partial:
         problems.append("no image lines below the header, add one line per image")
     problems += _duplicates(images, labels, groups if "group" in (header or ()) else None, lines)
     if check_files:
@@ -221,11 +226,11 @@ def _delimiter(text: str) -> str:
     return ","
 
 
-def _check_header(header: list[str]) -> list[str]:
+def _check_header(header: list[str], partial: bool = False) -> list[str]:
     problems = []
     allowed = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
     for name in header:
-        if name not in allowed:
+        if name not in allowed and not (partial and name):
             shown = f"'{name}'" if name else "an unnamed column"
             problems.append(f"line 1: unknown column {shown}, allowed columns are "
                             f"{', '.join(allowed)}")
@@ -333,10 +338,10 @@ def _read_folder(source: Path):
 # --------------------------------------------------------------------------- whole-set checks
 
 
-def _check_classes(labels, groups, n_folds) -> list[str]:
+def _check_classes(labels, groups, n_folds, partial: bool = False) -> list[str]:
     problems = []
     counts = Counter(labels)
-    if len(counts) == 1:
+    if len(counts) == 1 and not partial:
         (only,) = counts
         problems.append(f"only one class ('{only}'), training needs at least two classes")
     by_lower: dict[str, list[str]] = {}

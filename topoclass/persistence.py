@@ -32,7 +32,7 @@ from scipy.sparse.csgraph import minimum_spanning_tree
 from scipy.spatial import cKDTree
 
 from topoclass.errors import PatternError
-from topoclass.sites import SitePattern, Triangulation, triangulate
+from topoclass.sites import SitePattern, Triangulation, site_coordinates, triangulate
 
 #: Default radius limit in units of the site spacing; see :func:`pattern_persistence`.
 DEFAULT_MAX_SCALE = 2.5
@@ -182,9 +182,12 @@ def pattern_persistence(
         Radius limit of the H1 computation in units of the spacing (H0 is exact at all scales).
         The default 2.5 lets the loops of the common defects die below it (geometry of the
         triangular lattice with spacing ``a``): a vacancy (a hexagon of side ``a``) dies at
-        ``sqrt(3) a ~ 1.73 a``, a square loop at ``sqrt(2) a ~ 1.41 a``, a 5/7 dislocation pair
-        or a grain-boundary loop (heptagons, octagons of stretched bonds, estimate) at about
-        1.5–1.9 ``a``, two adjacent vacancies or a vacancy merged with a pore at about ``2 a``.
+        ``sqrt(3) a ~ 1.73 a``, and so does a di-vacancy (two adjacent sites missing: the
+        widest triangle left over it is still ``a, sqrt(3) a, sqrt(3) a``), a square loop at
+        ``sqrt(2) a ~ 1.41 a``, a 5/7 dislocation pair or a grain-boundary loop (heptagons,
+        octagons of stretched bonds, estimate) at about 1.5–1.9 ``a``, a tri-vacancy (three
+        mutually adjacent sites, or three in a row) at ``2 a`` (checked against dense ripser
+        in tests/test_persistence.py).
         2.5 leaves room for jitter above that; larger holes (missing patches) end as truncated
         bars, which still count. A larger limit costs time: the work grows with the number of
         site pairs within ``max_scale`` (about ``1.8 max_scale**2`` per site).
@@ -192,8 +195,9 @@ def pattern_persistence(
         Keep only the bars charged to inner sites. Border sites (``pattern.border``) miss
         neighbours beyond the frame, and an H1 loop reaches about one spacing past its birth
         edge, so inner sites are the non-border sites at least ``border_guard`` from every
-        border site. A bar is charged to the site nearest to the midpoint of its edge (the death
-        edge for H0, the birth edge for H1), i.e. to the Voronoi cell holding that midpoint: the
+        border site. A bar is charged to the site nearest to the midpoint of its death edge
+        (for H1 the longest edge of the triangle that fills the loop; a truncated H1 bar, which
+        has none, by its birth edge), i.e. to the Voronoi cell holding that midpoint: the
         cells tile the plane, so bars per inner site is an unbiased density with no perimeter
         term (keeping only edges with both ends inner would undercount by a few per cent in a
         30-spacing window; measured in benchmarks/RESULTS_persistence.md).
@@ -274,13 +278,7 @@ def rips_persistence(
         ``n_interior`` (inner distinct points, or ``n_sites`` without ``border``).
         H0 bars are sorted by death, H1 bars by birth then death. Edges index into ``xy``.
     """
-    name = source or "the site cloud"
-    xy = np.asarray(xy, dtype=np.float64)
-    if xy.ndim != 2 or xy.shape[1] != 2:
-        raise PatternError(f"{name}: site coordinates must have shape (n, 2), got {xy.shape}")
-    if not np.all(np.isfinite(xy)):
-        raise PatternError(f"{name}: site coordinates contain NaN or infinity; "
-                           "check the site finding of this image")
+    xy = site_coordinates(xy, source or "the site cloud")
     if not np.isfinite(max_scale) or max_scale <= 0:
         raise ValueError(f"max_scale must be a positive number, not {max_scale!r}")
     if not np.isfinite(guard) or guard < 0:

@@ -2,9 +2,10 @@
 
 Stage 7 of the pipeline. Rows are appended and flushed as images finish, so a crash, ``kill -9``
 or Ctrl-C leaves a valid CSV holding every finished image; ``resume=True`` skips the images
-already in the file (same path, same content hash) and scores the rest. A lock file beside the
-output keeps two runs from writing the same file at once. Rows come in input order whatever the
-number of jobs, so the same inputs and model give a byte-identical file.
+already in the file (the same file however its path is spelled, with the same content hash) and
+scores the rest. A lock file beside the output keeps two runs from writing the same file at once.
+Rows come in input order whatever the number of jobs, so the same inputs and model give a
+byte-identical file.
 """
 
 from __future__ import annotations
@@ -102,7 +103,9 @@ def score_images(
     out : path-like
         The CSV to write. An existing file is refused unless ``resume`` or ``overwrite``.
     settings : FeatureSettings, optional
-        Must match the settings the model was trained with; taken from the model when omitted.
+        Site-finding and persistence settings; when omitted, the ones the model was trained
+        with (:meth:`FeatureSettings.from_model`). Scoring with other settings than the
+        training's gives meaningless probabilities; pass them only to change ``max_pixels``.
     jobs : int
         Worker processes for feature extraction.
     resume : bool
@@ -133,15 +136,16 @@ def score_images(
         todo: list[Path] = []
         for p in paths:
             p = Path(p)
-            if str(p) in done:
+            key = _same_file_key(p)
+            if key in done:
                 try:
-                    unchanged = done[str(p)] == file_sha256(p)
+                    unchanged = file_sha256(p) in done[key]
                 except OSError:
                     unchanged = True  # gone since: keep its finished row
                 if unchanged:
                     summary.skipped += 1
                     continue
-                _drop_rows(out, columns, str(p))  # the file changed: its old row is stale
+                _drop_rows(out, columns, key)  # the file changed: its old row is stale
             todo.append(p)
         with open(out, "a", newline="", encoding="utf-8") as fh:
             if resume and recorder is not None:
@@ -258,15 +262,11 @@ def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[
     if not ok:
         return rows
     records = [results[i].record for i in ok]
-    try:
-        proba, unfamiliarity, reasons = model.assess(records)
-        proba = np.asarray(proba, dtype=float)
-        unfamiliarity = np.asarray(unfamiliarity, dtype=float)
-    except Exception as exc:  # keep the batch going; the rows say what happened
-        for i in ok:
-            rows[i].update(status="error",
-                           message=f"{results[i].path}: scoring failed: {exc}")
-        return rows
+    # No try/except here: a record that was measured but cannot be scored is a bug (or a model
+    # that does not fit its own settings) and must fail loudly, not turn into error rows.
+    proba, unfamiliarity, reasons = model.assess(records)
+    proba = np.asarray(proba, dtype=float)
+    unfamiliarity = np.asarray(unfamiliarity, dtype=float)
     for k, i in enumerate(ok):
         rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
     return rows
@@ -304,14 +304,19 @@ def _format_row(row: dict[str, object], columns: list[str]) -> str:
     return buf.getvalue()
 
 
-def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[str, str]:
-    """Start a fresh file, or validate and clean an existing one; return {image: sha256} done."""
+def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path, set[str]]:
+    """Start a fresh file, or validate and clean an existing one.
+
+    Returns the finished images as {resolved path: content hashes of its rows}, so that a
+    path spelled another way (relative, absolute, through a symlink) still finds its row.
+    """
     if not (resume and out.exists()):
         out.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
                        encoding="utf-8")
         return {}
     text = out.read_text(encoding="utf-8")
-    header = text.split("\n", 1)[0].split(",")
+    # Parse the header as CSV: a class name may hold a comma or a quote.
+    header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
     if header != columns:
         raise TopoclassError(
             f"{out}: its columns do not match this model's classes; resume only with the model "
@@ -320,11 +325,19 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[str,
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.
         out.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
-    return {r["image"]: r.get("sha256", "") for r in read_scores(out)}
+    done: dict[Path, set[str]] = {}
+    for r in read_scores(out):
+        done.setdefault(_same_file_key(r["image"]), set()).add(r.get("sha256") or "")
+    return done
 
 
-def _drop_rows(out: Path, columns: list[str], image: str) -> None:
-    rows = [r for r in read_scores(out) if r["image"] != image]
+def _same_file_key(path: str | Path) -> Path:
+    """One key for every spelling of a file's path: relative, absolute, through symlinks."""
+    return Path(os.path.expanduser(path)).resolve()
+
+
+def _drop_rows(out: Path, columns: list[str], key: Path) -> None:
+    rows = [r for r in read_scores(out) if _same_file_key(r["image"]) != key]
     tmp = out.with_name(out.name + ".tmp")
     with open(tmp, "w", newline="", encoding="utf-8") as fh:
         fh.write(_format_row(dict(zip(columns, columns, strict=True)), columns))
@@ -337,7 +350,8 @@ class _OutputLock:
     """An exclusive lock file ``<out>.lock`` holding the writer's PID.
 
     A lock left by a process that no longer runs (killed) is taken over, so a killed run can be
-    resumed without manual clean-up.
+    resumed without manual clean-up; so is an empty or garbled lock older than
+    ``_EMPTY_LOCK_SECONDS`` (a crash between creating the file and writing the PID).
     """
 
     def __init__(self, out: Path):
@@ -365,13 +379,22 @@ class _OutputLock:
         self.path.unlink(missing_ok=True)
 
 
+#: An empty lock this old cannot belong to a live run: the PID is written right after creation.
+_EMPTY_LOCK_SECONDS = 10.0
+
+
 def _lock_is_stale(path: Path) -> bool:
     try:
-        pid = int(path.read_text().strip() or "0")
-    except (OSError, ValueError):
+        text = path.read_text().strip()
+        age = time.time() - path.stat().st_mtime
+    except OSError:
         return False
+    try:
+        pid = int(text)
+    except ValueError:
+        pid = 0
     if pid <= 0:
-        return False
+        return age > _EMPTY_LOCK_SECONDS
     try:
         os.kill(pid, 0)
     except ProcessLookupError:

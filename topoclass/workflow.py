@@ -102,8 +102,9 @@ def train_from_labels(
         A key of :data:`topoclass.model.CLASSIFIERS`.
     cv : int
         Cross-validation folds (grouped by the sheet's ``group`` column when it has one).
-    calibration : {"auto", "sigmoid", "isotonic"}
-        Probability calibration of the final model.
+    calibration : {"auto", "sigmoid", "temperature", "isotonic"}
+        Probability calibration of the final model (see
+        :func:`topoclass.model.choose_calibration`; ``auto`` picks from the class sizes).
     seed : int
         Seed of every random step.
     select : bool

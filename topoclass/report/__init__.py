@@ -10,12 +10,20 @@ The last stage of the pipeline; it may read every stage to its left and draws wh
 * ``batch_page`` — one self-contained HTML page beside a ``scores.csv``.
 """
 
-from topoclass.defects import DEFECT_COLUMNS, locate_defects, write_defects_csv
+from topoclass.defects import (
+    DEFECT_COLUMNS,
+    GAP_FLOOR,
+    LOOP_FLOOR,
+    defect_counts,
+    locate_defects,
+    write_defects_csv,
+)
 from topoclass.report.batch_page import MAX_DETAILS, MAX_THUMBNAILS, write_batch_report
 from topoclass.report.figures import (
     CLASS_COLOURS,
     COORDINATION_COLOURS,
     DEFECT_COLOURS,
+    MAX_DRAWN_DEFECTS,
     diagram_and_barcode_figure,
     image_to_figure_pixels,
     plot_confusion,
@@ -33,7 +41,8 @@ from topoclass.report.figures import (
 from topoclass.report.importance import feature_family, feature_importance
 
 __all__ = [
-    "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "MAX_DETAILS",
+    "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "GAP_FLOOR",
+    "LOOP_FLOOR", "MAX_DETAILS", "MAX_DRAWN_DEFECTS", "defect_counts",
     "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
     "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects",
     "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",

@@ -4,7 +4,7 @@ The last stage of the pipeline; it may read every stage to its left and draws wh
 
 * inspection pictures of one micrograph — the sites coloured by their Delaunay coordination
   (:func:`plot_sites`), the persistence diagram and barcode (:func:`plot_diagrams`) and the
-  defect map, where the longest H1 bars and the latest H0 merges sit on the image
+  defect map, where the H1 loops and wide H0 gaps above a noise floor sit on the image
   (:func:`locate_defects`, :func:`plot_defects`);
 * training and validation figures — confusion matrix, reliability diagram with bin counts,
   per-class precision and recall, and permutation importance of the features
@@ -33,7 +33,7 @@ from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
-from topoclass.defects import locate_defects, write_defects_csv
+from topoclass.defects import defect_counts, locate_defects, write_defects_csv
 from topoclass.persistence import Diagrams
 from topoclass.report.importance import feature_importance
 from topoclass.sites import SitePattern
@@ -60,6 +60,11 @@ CLASS_COLOURS = ("#0072B2", "#E69F00", "#009E73", "#CC79A7", "#56B4E9", "#D55E00
 
 
 _FIGURE_PX = 800  # longest side of the image panel of the inspection pictures
+
+
+#: The defect map draws at most this many defects of each kind (the longest); the CSV has all.
+#: Beyond about this many circles on an 800-pixel picture they cover each other.
+MAX_DRAWN_DEFECTS = 150
 
 
 def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
@@ -160,20 +165,29 @@ def diagram_and_barcode_figure(diagrams: Diagrams) -> Figure:
     return fig
 
 
-def plot_defects(image: np.ndarray, pattern: SitePattern, defects: Sequence[dict]) -> Figure:
+def plot_defects(image: np.ndarray, pattern: SitePattern, defects: Sequence[dict], *,
+                 max_drawn: int = MAX_DRAWN_DEFECTS, ranked: int = 10) -> Figure:
     """The defect map: :func:`locate_defects` output drawn on the micrograph.
 
-    H1 loops are circles whose radius is half the bar length (in pixels) with their rank beside
-    them and the placing edge drawn; H0 merges are their minimum-spanning-tree edges with a
-    small circle at the midpoint, sized the same way.
+    H1 loops are circles whose radius is half the bar length (in pixels) with the placing edge
+    drawn; H0 merges are their minimum-spanning-tree edges with a small circle at the midpoint,
+    sized the same way. At most ``max_drawn`` of each kind are drawn (the longest); the legend
+    gives how many were found above the noise floor and says when the drawing is capped. The
+    ``ranked`` longest loops carry their rank (the ``rank`` column of ``defects.csv``).
     """
+    if max_drawn < 0 or ranked < 0:
+        raise ValueError(f"max_drawn and ranked must be >= 0, not {max_drawn!r}, {ranked!r}")
     fig, ax, scale = _image_figure(image, legend_rows=1)
     ax.scatter(pattern.xy[:, 0], pattern.xy[:, 1], s=_marker_area(pattern.spacing * scale, 0.12),
                c="white", edgecolors="black", linewidths=0.2, alpha=0.6)
     spacing = pattern.spacing
     xy = pattern.xy
-    for row in defects:
+    drawn = {"h1": 0, "h0": 0}
+    for row in defects:  # rows come longest first within each kind
         kind = row["kind"]
+        if drawn[kind] >= max_drawn:
+            continue
+        drawn[kind] += 1
         colour = DEFECT_COLOURS[kind]
         i, j = int(row["site_i"]), int(row["site_j"])
         if row["located_by"] in ("death edge", "mst edge", "birth edge"):
@@ -182,37 +196,49 @@ def plot_defects(image: np.ndarray, pattern: SitePattern, defects: Sequence[dict
         radius = max(0.5 * row["length"] * spacing, 0.25 * spacing)
         ax.add_patch(_circle((row["x"], row["y"]), radius, colour,
                              lw=2.0 if kind == "h1" else 1.2))
-        if kind == "h1":
+        if kind == "h1" and row["rank"] <= ranked:
             ax.annotate(str(row["rank"]), (row["x"] + radius, row["y"] - radius), color=colour,
                         fontsize=8, fontweight="bold", ha="left", va="bottom",
                         bbox={"boxstyle": "round,pad=0.1", "fc": "white", "ec": "none",
                               "alpha": 0.7})
-    n1 = sum(r["kind"] == "h1" for r in defects)
-    n0 = sum(r["kind"] == "h0" for r in defects)
+    found = defect_counts(defects)
+    floors = {r["kind"]: r["floor"] for r in defects}
+    words = {"h1": "H1 loops", "h0": "H0 gaps"}
+    labels = {}
+    for kind in ("h1", "h0"):
+        text = f"{found[kind]} {words[kind]}"
+        if kind in floors:
+            text += f" > {floors[kind]:.2g} spacing"
+        if drawn[kind] < found[kind]:
+            text += f" (drawn: longest {drawn[kind]})"
+        labels[kind] = text
     handles = [
         Line2D([], [], ls="", marker="o", markersize=10, markerfacecolor="none",
                markeredgecolor=DEFECT_COLOURS["h1"], markeredgewidth=2,
-               label=f"{n1} longest H1 bars (loops; circle radius = half the bar length)"),
+               label=labels["h1"] + "; radius = half the bar"),
         Line2D([], [], color=DEFECT_COLOURS["h0"], lw=2.2, marker="o", markerfacecolor="none",
-               label=f"{n0} latest H0 merges (widest gaps)"),
+               label=labels["h0"] + " (widest merges)"),
     ]
     fig.legend(handles=handles, loc="lower center", ncols=2, fontsize=8, frameon=False)
     return fig
 
 
 def write_inspection_figures(image: np.ndarray, pattern: SitePattern, diagrams: Diagrams,
-                             out: str | Path, *, top: int = 10) -> list[Path]:
+                             out: str | Path, *, max_drawn: int = MAX_DRAWN_DEFECTS
+                             ) -> list[Path]:
     """Write ``overlay.png``, ``diagram.png``, ``defects.png`` and ``defects.csv`` into ``out``.
 
-    Returns the paths written, in that order.
+    ``defects.csv`` holds every defect above the noise floors of :func:`locate_defects`;
+    ``defects.png`` draws at most ``max_drawn`` of each kind. Returns the paths written, in
+    that order.
     """
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    defects = locate_defects(pattern, diagrams, top=top)
+    defects = locate_defects(pattern, diagrams)
     paths = [out / "overlay.png", out / "diagram.png", out / "defects.png", out / "defects.csv"]
     save_figure(plot_sites(image, pattern), paths[0])
     save_figure(diagram_and_barcode_figure(diagrams), paths[1])
-    save_figure(plot_defects(image, pattern, defects), paths[2])
+    save_figure(plot_defects(image, pattern, defects, max_drawn=max_drawn), paths[2])
     write_defects_csv(defects, paths[3])
     return paths
 
