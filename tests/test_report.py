@@ -252,10 +252,10 @@ def test_inspect_out_writes_pictures_and_summary(tmp_path):
     summary = inspect_image(path, out=tmp_path / "out")
     names = sorted(Path(p).name for p in summary["outputs"])
     assert names == sorted(["sites.csv", "summary.json", "overlay.png", "diagram.png",
-                            "defects.png", "defects.csv"])
+                            "defects.png", "defects.csv", "grains.png"])
     saved = json.loads((tmp_path / "out" / "summary.json").read_text())
     assert saved == {k: v for k, v in summary.items() if k != "outputs"}
-    for name in ("overlay.png", "diagram.png", "defects.png"):
+    for name in ("overlay.png", "diagram.png", "defects.png", "grains.png"):
         with Image.open(tmp_path / "out" / name) as im:
             assert im.width > 300 and im.height > 300
 

@@ -24,7 +24,7 @@ import sqlalchemy as sa
 
 from topoclass.errors import StoreError
 from topoclass.images import collect_image_paths
-from topoclass.scoring import read_scores, score_images
+from topoclass.scoring import AMOUNT_COLUMNS, read_scores, score_images
 from topoclass.store import (
     SCHEMA_HEAD,
     VERSION_TABLE,
@@ -145,6 +145,13 @@ def test_score_stores_the_rows_the_csv_gets(small_model, batch, feature_cache, t
             for c in classes:  # the CSV keeps 6 significant digits
                 assert rec[f"p_{c}"] == pytest.approx(float(row[f"p_{c}"]), rel=1e-5)
             assert rec["n_sites"] == int(row["n_sites"])
+            assert rec["verdict"] == row["verdict"]
+            for key in AMOUNT_COLUMNS:  # empty where the file records no pixel size
+                if row[key]:
+                    assert rec[key] == pytest.approx(float(row[key]), rel=1e-5)
+                else:
+                    assert pd.isna(rec[key])
+            assert any(row[key] for key in AMOUNT_COLUMNS)
     batches = store.batches()
     assert batches.loc[0, "note"] == "line A" and not pd.isna(batches.loc[0, "finished_utc"])
     assert (batches.loc[0, "n_scored"], batches.loc[0, "n_failed"]) == (summary.scored, 2)

@@ -16,6 +16,8 @@ from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 _FEATURE_HELP = "two-bar, order, topology or all"
+_ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
+               "true class for at most this share of images like the training set.")
 _CLASSIFIER_HELP = f"{', '.join(CLASSIFIERS)} (default {DEFAULT_CLASSIFIER})"
 
 app = typer.Typer(
@@ -126,6 +128,7 @@ def train(
     polarity: str = typer.Option("auto", help="auto, bright (dots) or dark (pores)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
     from topoclass.features import FeatureSettings
@@ -135,6 +138,7 @@ def train(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
         settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -183,6 +187,8 @@ def score(
                                      "store: a SQLite file or a postgresql:// URL."),
     note: str = typer.Option("", "--note", help="Operator note kept with the batch in the "
                              "store."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
 ) -> None:
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
@@ -204,7 +210,7 @@ def score(
                                               len(paths), note)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True,
-                           recorder=recorder)
+                           recorder=recorder, alpha=alpha)
     if recorder is not None:
         recorder.store.close()
     typer.echo(summary_text(summary))
@@ -437,9 +443,12 @@ def _human_summary(summary: dict) -> str:
     lines.append("  (persistence values below are in units of the spacing)")
     skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
     for key, value in summary.items():
-        if key in skip or value is None:
+        if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
         text = f"{value:.4g}" if isinstance(value, float) else str(value)
+        err = summary.get(key + "_err")
+        if err is not None:
+            text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")

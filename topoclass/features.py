@@ -25,6 +25,7 @@ import numpy as np
 from topoclass import __version__
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass.amounts import PatternAmounts, pattern_amounts
 from topoclass.errors import TopoclassError
 from topoclass.images import Micrograph, read_micrograph
 from topoclass.order import order_measures
@@ -33,7 +34,7 @@ from topoclass.records import PatternRecord
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 3
+_CACHE_LAYOUT = 4
 
 
 @dataclass(frozen=True)
@@ -106,11 +107,12 @@ def default_cache_dir() -> Path:
 
 @dataclass(frozen=True)
 class ImageMeasurement:
-    """Every stage's output for one micrograph: the image, its sites and its record."""
+    """Every stage's output for one micrograph: the image, its sites, its record and amounts."""
 
     micrograph: Micrograph
     pattern: SitePattern
     record: PatternRecord
+    amounts: PatternAmounts | None = None
 
 
 def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> ImageMeasurement:
@@ -130,8 +132,10 @@ def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> 
         micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=str(path)
     )
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
-    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path))
-    return ImageMeasurement(micrograph, pattern, record)
+    amounts = pattern_amounts(pattern, diagrams)
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path),
+                           amounts=amounts.values)
+    return ImageMeasurement(micrograph, pattern, record, amounts)
 
 
 def measure_pattern(path: str | Path, settings: FeatureSettings | None = None) -> PatternRecord:
@@ -299,10 +303,14 @@ def _record_to_arrays(record: PatternRecord) -> dict[str, np.ndarray]:
     keys = list(record.order)
     arrays["order_keys"] = np.array(keys, dtype=str)
     arrays["order_values"] = np.array([record.order[k] for k in keys], dtype=float)
+    names = list(record.amounts)
+    arrays["amount_keys"] = np.array(names, dtype=str)
+    arrays["amount_values"] = np.array([record.amounts[k] for k in names], dtype=float)
     return arrays
 
 
 def _record_from_arrays(data, source: str) -> PatternRecord:
     diagrams = Diagrams.from_dict({k[2:]: data[k] for k in data.files if k.startswith("d_")})
     order = dict(zip(data["order_keys"].tolist(), data["order_values"].tolist(), strict=True))
-    return PatternRecord(diagrams=diagrams, order=order, source=source)
+    amounts = dict(zip(data["amount_keys"].tolist(), data["amount_values"].tolist(), strict=True))
+    return PatternRecord(diagrams=diagrams, order=order, source=source, amounts=amounts)

@@ -21,6 +21,7 @@ SUMMARY_MEASURES = (
     "h1_length_sum",
     "h1_length_sum_per_site",
     "h1_count",
+    "h1_count_raw",
     "h1_truncated_count",
     "psi6_global",
     "psi6_local_mean",
@@ -73,19 +74,23 @@ def summarise(measurement: ImageMeasurement) -> dict:
             summary[key] = _json_number(merged[key])
     for key, value in record.order.items():
         summary.setdefault(key, _json_number(value))
-    summary["h1_count"] = int(bars["h1_count"])
+    summary["h1_count"] = int(bars["h1_count"])  # loops above the noise floor
+    summary["h1_count_raw"] = int(bars["h1_count_raw"])  # every loop, site noise included
     summary["h1_truncated_count"] = int(bars["h1_truncated_count"])
+    for key, value in record.amounts.items():
+        summary.setdefault(key, _json_number(value))
     return summary
 
 
 def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Path]:
     """Write the files of one measured image into ``out``; return the paths written.
 
-    ``sites.csv`` (``x,y,border``), ``summary.json`` (as ``inspect --json``) and the pictures
+    ``sites.csv`` (``x,y,border``), ``summary.json`` (as ``inspect --json``), the pictures
     of :func:`topoclass.report.write_inspection_figures`: ``overlay.png``, ``diagram.png``,
-    ``defects.png`` and ``defects.csv``.
+    ``defects.png`` and ``defects.csv``, and ``grains.png`` (the grains of the orientation
+    field, :func:`topoclass.report.plot_grains`).
     """
-    from topoclass.report import write_inspection_figures
+    from topoclass.report import plot_grains, save_figure, write_inspection_figures
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
@@ -99,6 +104,11 @@ def write_inspection(measurement: ImageMeasurement, out: str | Path) -> list[Pat
                             encoding="utf-8")
     pictures = write_inspection_figures(measurement.micrograph.image, pattern,
                                         measurement.record.diagrams, out)
+    if measurement.amounts is not None:
+        grains_png = out / "grains.png"
+        save_figure(plot_grains(measurement.micrograph.image, pattern, measurement.amounts),
+                    grains_png)
+        pictures.append(grains_png)
     return [sites_csv, summary_json, *pictures]
 
 

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 
+from topoclass.amounts import AMOUNT_KEYS
 from topoclass.errors import StoreError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
@@ -29,6 +30,13 @@ CAUTION = (
     "Probabilities are estimates learned from the labelled training set. Re-validate the model "
     "whenever the process, the instrument or the magnification changes. These scores support, "
     "and do not replace, the lab's own quality procedures."
+)
+
+#: Said wherever the review band is shown: what its guarantee covers and what it does not.
+BAND_NOTE = (
+    "The verdict is one class when the review band (error rate alpha = {alpha:g}) rules out "
+    "all others, 'review' when it cannot, 'unfamiliar' when no class fits; its coverage holds "
+    "only for images like the labelled training set."
 )
 
 # Images are scored in small chunks: one predict call per image costs the whole forest's
@@ -52,6 +60,11 @@ MEASURE_COLUMNS = (
     "nn_cv",
 )
 
+#: Physical amounts written after the measures (:data:`topoclass.amounts.AMOUNT_KEYS`; lengths
+#: in spacings or nm, areas in µm², each ``*_err`` the uncertainty of the amount before it). A
+#: cell is empty where the amount needs a pixel size the file did not record.
+AMOUNT_COLUMNS = AMOUNT_KEYS
+
 
 @dataclass
 class ScoreSummary:
@@ -62,20 +75,24 @@ class ScoreSummary:
     failed: int = 0
     skipped: int = 0
     unfamiliar: int = 0
-    #: Predicted classes of the scored images that are not unfamiliar.
+    #: Scored images whose verdict is ``review`` (more than one class cannot be ruled out).
+    review: int = 0
+    #: Verdicts (single classes) of the scored images that are neither unfamiliar nor review.
     per_class: Counter = field(default_factory=Counter)
     #: The results store the rows also went to (see :mod:`topoclass.store`), if any.
     store: str | None = None
     #: Why the store stopped taking rows (the CSV still has every row), if it did.
     store_error: str | None = None
+    #: Error rate of the review band used.
+    alpha: float | None = None
 
 
 def score_columns(classes: Sequence[str]) -> list[str]:
     """The header of ``scores.csv`` for a model with these classes."""
     return (
-        ["image", "status", "predicted", "confidence"]
+        ["image", "status", "predicted", "confidence", "verdict"]
         + [f"p_{c}" for c in classes]
-        + ["unfamiliar", *MEASURE_COLUMNS, "sha256", "message"]
+        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "sha256", "message"]
     )
 
 
@@ -91,6 +108,7 @@ def score_images(
     cache_dir: str | Path | None = None,
     progress: bool = False,
     recorder=None,
+    alpha: float | None = None,
 ) -> ScoreSummary:
     """Score images with a trained model and append one row per image to ``out``.
 
@@ -119,13 +137,23 @@ def score_images(
         written to the CSV. With ``resume``, images the store already holds for this model and
         settings are not scored again: their stored rows are copied to the CSV. A store that
         fails stops taking rows (``summary.store_error`` says why); the CSV still gets them.
+    alpha : float, optional
+        Error rate of the review band behind the ``verdict`` column; the model's own (set at
+        training) when omitted.
     """
     out = Path(out)
     classes = [str(c) for c in model.classes]
     columns = score_columns(classes)
     if settings is None:
         settings = FeatureSettings.from_model(model)
-    summary = ScoreSummary(out=out, store=None if recorder is None else recorder.store.name)
+    band = getattr(model, "review_band", None)
+    if alpha is not None:
+        from topoclass.model.conformal import check_alpha
+
+        alpha = check_alpha(alpha)
+    summary = ScoreSummary(out=out, alpha=alpha if alpha is not None
+                           else (band.alpha_ if band is not None else None),
+                           store=None if recorder is None else recorder.store.name)
     if out.exists() and not (resume or overwrite):
         raise TopoclassError(
             f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
@@ -155,7 +183,7 @@ def score_images(
                 description="scoring",
             )
             for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
-                rows = _score_rows(model, classes, chunk)
+                rows = _score_rows(model, classes, chunk, alpha)
                 if recorder is not None and summary.store_error is None:
                     try:
                         recorder.add(rows)
@@ -167,10 +195,12 @@ def score_images(
                 for row in rows:
                     if row["status"] == "ok":
                         summary.scored += 1
-                        if row["unfamiliar"] == "yes":
+                        if row["verdict"] == "unfamiliar":
                             summary.unfamiliar += 1
+                        elif row["verdict"] == "review":
+                            summary.review += 1
                         else:
-                            summary.per_class[row["predicted"]] += 1
+                            summary.per_class[row["verdict"]] += 1
                     else:
                         summary.failed += 1
     if recorder is not None and summary.store_error is None:
@@ -195,13 +225,17 @@ def summary_text(summary: ScoreSummary) -> str:
     lines = [f"scored {summary.scored}, failed {summary.failed}, already done {summary.skipped}"]
     for cls, n in sorted(summary.per_class.items()):
         lines.append(f"  predicted {cls:<16} {n}")
-    lines.append(f"  unfamiliar: {summary.unfamiliar} (unlike the training images, so their "
-                 "class is not counted above; check them by eye)")
+    lines.append(f"  review: {summary.review} (more than one class cannot be ruled out, so "
+                 "not counted above; look at them)")
+    lines.append(f"  unfamiliar: {summary.unfamiliar} (unlike the training images or no class "
+                 "fits, so their class is not counted above; check them by eye)")
     lines.append(f"results: {summary.out}")
     if summary.store is not None:
         lines.append(f"store: {summary.store}" if summary.store_error is None else
                      f"store: NOT complete ({summary.store_error}); every row is in the CSV")
     lines.append("")
+    if summary.alpha is not None:
+        lines.append(BAND_NOTE.format(alpha=summary.alpha))
     lines.append("Caution: " + CAUTION)
     return "\n".join(lines)
 
@@ -252,7 +286,8 @@ def _chunks(results, size: int, seconds: float):
         yield chunk
 
 
-def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[dict]:
+def _score_rows(model, classes: list[str], results: list[RecordResult],
+                alpha: float | None = None) -> list[dict]:
     """One row per result, in order; the measured images are predicted in one call."""
     rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
     ok = [i for i, r in enumerate(results) if r.ok]
@@ -267,8 +302,14 @@ def _score_rows(model, classes: list[str], results: list[RecordResult]) -> list[
     proba, unfamiliarity, reasons = model.assess(records)
     proba = np.asarray(proba, dtype=float)
     unfamiliarity = np.asarray(unfamiliarity, dtype=float)
+    verdicts = model.verdicts(proba, unfamiliarity, alpha=alpha)
     for k, i in enumerate(ok):
         rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
+        rows[i]["verdict"] = verdicts[k]
+        if verdicts[k] == "unfamiliar" and unfamiliarity[k] <= 1.0:
+            rows[i]["message"] = "; ".join(
+                m for m in ("no class fits at the review band's error rate; check by eye",
+                            rows[i]["message"]) if m)
     return rows
 
 
@@ -284,6 +325,10 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
     for key in MEASURE_COLUMNS:
         if key in measures:
             row[key] = measures[key]
+    for key in AMOUNT_COLUMNS:
+        value = record.amounts.get(key)
+        if value is not None and np.isfinite(value):
+            row[key] = value
     messages = list(result.notes)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
@@ -319,8 +364,8 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
     header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
     if header != columns:
         raise TopoclassError(
-            f"{out}: its columns do not match this model's classes; resume only with the model "
-            "that wrote it, or write to a new file"
+            f"{out}: its columns do not match this model's classes or this version's columns; "
+            "resume only with the model and version that wrote it, or write to a new file"
         )
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.

@@ -9,8 +9,9 @@ newer one.
 
 Tables: ``batches`` (when, where, who, which model and settings, topoclass version, note),
 ``images`` (content hash, size in bytes), ``results`` (one row per image scored in a batch:
-path, status, prediction, unfamiliar flag, measures, message; columns this schema does not
-know, such as amounts, go to ``extra`` as JSON) and ``probabilities`` (one row per class).
+path, status, prediction, verdict, unfamiliar flag, measures, message; columns this schema
+does not know go to ``extra`` as JSON), ``probabilities`` (one row per class) and ``amounts``
+(one row per physical amount of :mod:`topoclass.amounts` that could be measured).
 
 A result is identified by (image content hash, model hash, settings key, run): scoring the
 same image with the same model and settings again adds run 2, 3, ...; nothing is replaced.
@@ -38,10 +39,10 @@ from sqlalchemy.engine import URL, Connection, Engine, make_url
 
 from topoclass import __version__
 from topoclass.errors import StoreError
-from topoclass.scoring import MEASURE_COLUMNS, score_columns
+from topoclass.scoring import AMOUNT_COLUMNS, MEASURE_COLUMNS, score_columns
 
 #: The schema revision this topoclass writes (the newest script in ``store_migrations``).
-SCHEMA_HEAD = "0002"
+SCHEMA_HEAD = "0003"
 
 # Our own name for Alembic's version table, so a database shared with other tools keeps apart.
 VERSION_TABLE = "topoclass_schema_version"
@@ -54,8 +55,8 @@ _FLOAT_MEASURES = ("spacing_px", "h0_length_variance", "h1_length_sum", "psi6_gl
                    "psi6_local_mean", "defect_fraction", "clark_evans_r", "nn_cv")
 _STORED_MEASURES = _INT_MEASURES + _FLOAT_MEASURES
 # Row keys with a place of their own; any other key of a scored row is kept in ``extra``.
-_OWN_KEYS = {"image", "status", "predicted", "confidence", "unfamiliar", "sha256", "message",
-             *_STORED_MEASURES}
+_OWN_KEYS = {"image", "status", "predicted", "confidence", "verdict", "unfamiliar", "sha256",
+             "message", *_STORED_MEASURES, *AMOUNT_COLUMNS}
 
 metadata = sa.MetaData()
 
@@ -106,6 +107,7 @@ results = sa.Table(
     *[sa.Column(name, sa.Float) for name in _FLOAT_MEASURES],
     sa.Column("extra", sa.Text),
     sa.Column("message", sa.Text, nullable=False),
+    sa.Column("verdict", sa.String(255)),
     sa.UniqueConstraint("image_id", "model_sha256", "settings_key", "run",
                         name="uq_results_image_model_settings_run"),
 )
@@ -115,6 +117,13 @@ probabilities = sa.Table(
     sa.Column("result_id", sa.Integer, sa.ForeignKey("results.id"), primary_key=True),
     sa.Column("class_name", sa.String(255), primary_key=True),
     sa.Column("probability", sa.Float, nullable=False),
+)
+
+amounts = sa.Table(
+    "amounts", metadata,
+    sa.Column("result_id", sa.Integer, sa.ForeignKey("results.id"), primary_key=True),
+    sa.Column("name", sa.String(64), primary_key=True),
+    sa.Column("value", sa.Float, nullable=False),
 )
 
 
@@ -233,15 +242,17 @@ class ResultStore:
         Returns
         -------
         DataFrame with ``batch, scored_utc, image, sha256, run, status, predicted, confidence,
-        p_<class>…, unfamiliar, <measures>…, <extra columns>…, message, model_sha256,
-        settings_key, note, host``; probabilities of classes a model does not have are empty.
+        verdict, p_<class>…, unfamiliar, <measures>…, <amounts>…, <extra columns>…, message,
+        model_sha256, settings_key, note, host``; probabilities of classes a model does not
+        have, and amounts that were not measured, are empty.
         """
         import pandas as pd
 
         query = (sa.select(results.c.id, results.c.batch_id.label("batch"),
                            results.c.scored_utc, results.c.path.label("image"),
                            images.c.sha256, results.c.run, results.c.status,
-                           results.c.predicted, results.c.confidence, results.c.unfamiliar,
+                           results.c.predicted, results.c.confidence, results.c.verdict,
+                           results.c.unfamiliar,
                            *[results.c[m] for m in _STORED_MEASURES], results.c.extra,
                            results.c.message, results.c.model_sha256,
                            results.c.settings_key, batches.c.note, batches.c.host)
@@ -258,12 +269,12 @@ class ResultStore:
             query = query.where(results.c.batch_id == int(batch))
         with self._read() as conn:
             rows = conn.execute(query).mappings().all()
-            probs = conn.execute(
-                sa.select(probabilities).where(
-                    probabilities.c.result_id.in_(query.with_only_columns(results.c.id)
-                                                  .scalar_subquery()))).all()
+            ids = query.with_only_columns(results.c.id).order_by(None).scalar_subquery()
+            probs = conn.execute(sa.select(probabilities)
+                                 .where(probabilities.c.result_id.in_(ids))).all()
+            found = conn.execute(sa.select(amounts).where(amounts.c.result_id.in_(ids))).all()
         frame = pd.DataFrame(rows, columns=list(query.selected_columns.keys()))
-        return _widen(frame, probs)
+        return _widen(frame, probs, found)
 
     # ---------------------------------------------------------------------------------------
 
@@ -320,7 +331,7 @@ class BatchRecorder:
         with self.store._write() as conn:
             ids = self._image_ids(conn, rows, when)
             runs = self._next_runs(conn, set(ids.values()))
-            values, probs = [], []
+            values, probs, amount_values = [], [], []
             for row in rows:
                 image_id = ids.get(str(row.get("sha256") or ""))
                 run = 1
@@ -329,6 +340,7 @@ class BatchRecorder:
                     runs[image_id] = run
                 values.append(self._result_values(row, image_id, run, when))
                 probs.append({c: _float(row.get(f"p_{c}")) for c in self.classes})
+                amount_values.append({k: _float(row.get(k)) for k in AMOUNT_COLUMNS})
             stored = conn.execute(sa.insert(results).returning(
                 results.c.id, sort_by_parameter_order=True), values).scalars().all()
             prob_rows = [{"result_id": rid, "class_name": c, "probability": p}
@@ -336,6 +348,11 @@ class BatchRecorder:
                          for c, p in row_probs.items() if p is not None]
             if prob_rows:
                 conn.execute(sa.insert(probabilities), prob_rows)
+            amount_rows = [{"result_id": rid, "name": k, "value": v}
+                           for rid, row_amounts in zip(stored, amount_values, strict=True)
+                           for k, v in row_amounts.items() if v is not None]
+            if amount_rows:
+                conn.execute(sa.insert(amounts), amount_rows)
         self.rows_written += len(rows)
 
     def finished(self, sha256s: Iterable[str]) -> dict[str, dict[str, object]]:
@@ -408,6 +425,7 @@ class BatchRecorder:
             "settings_key": self.settings_key, "run": run, "scored_utc": when,
             "status": str(row.get("status") or "error"),
             "predicted": row.get("predicted") or None,
+            "verdict": row.get("verdict") or None,
             "confidence": _float(row.get("confidence")),
             "unfamiliar": None if unfamiliar in (None, "") else unfamiliar == "yes",
             "message": str(row.get("message") or ""),
@@ -429,20 +447,22 @@ class BatchRecorder:
         if not found:
             return {}
         probs: dict[int, dict[str, float]] = {}
-        for rid, name, p in conn.execute(sa.select(probabilities).where(
-                probabilities.c.result_id.in_([r["id"] for r in found]))).all():
-            probs.setdefault(rid, {})[name] = p
+        for table in (probabilities, amounts):
+            for rid, name, v in conn.execute(sa.select(table).where(
+                    table.c.result_id.in_([r["id"] for r in found]))).all():
+                probs.setdefault(rid, {})[f"p_{name}" if table is probabilities else name] = v
         columns = [c for c in score_columns(self.classes) if c != "image"]
         out = {}
         for r in found:
             row: dict[str, object] = {
                 "status": r["status"], "predicted": r["predicted"] or "",
+                "verdict": r["verdict"] or "",
                 "confidence": r["confidence"],
                 "unfamiliar": "" if r["unfamiliar"] is None else
                 ("yes" if r["unfamiliar"] else "no"),
                 "sha256": r["sha256"], "message": r["message"],
                 **{m: r[m] for m in _STORED_MEASURES},
-                **{f"p_{c}": p for c, p in probs.get(r["id"], {}).items()},
+                **probs.get(r["id"], {}),
                 **json.loads(r["extra"] or "{}"),
             }
             out[r["sha256"]] = {k: row.get(k) for k in columns if row.get(k) is not None}
@@ -623,20 +643,22 @@ def _store_error(store: ResultStore, exc: sa.exc.DBAPIError) -> StoreError:
                       f"({reason}); check the user may write to the database")
 
 
-def _widen(frame, probs):
-    """Probabilities as ``p_<class>`` columns and ``extra`` spread into columns."""
+def _widen(frame, probs, found):
+    """Probabilities as ``p_<class>`` columns, amounts and ``extra`` spread into columns."""
     import pandas as pd
 
-    if probs:
-        long = pd.DataFrame(probs, columns=["id", "class_name", "probability"])
-        wide = long.pivot(index="id", columns="class_name", values="probability")
-        wide.columns = [f"p_{c}" for c in wide.columns]
+    for long_rows, prefix in ((probs, "p_"), (found, "")):
+        if not long_rows:
+            continue
+        long = pd.DataFrame(long_rows, columns=["id", "name", "value"])
+        wide = long.pivot(index="id", columns="name", values="value")
+        wide.columns = [f"{prefix}{c}" for c in wide.columns]
         frame = frame.merge(wide, how="left", left_on="id", right_index=True)
     extra = pd.DataFrame([json.loads(e) if isinstance(e, str) else {} for e in frame["extra"]],
                          index=frame.index)
     p_cols = sorted(c for c in frame.columns if c.startswith("p_"))
     head = ["batch", "scored_utc", "image", "sha256", "run", "status", "predicted",
-            "confidence", *p_cols, "unfamiliar", *MEASURE_COLUMNS]
+            "confidence", "verdict", *p_cols, "unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS]
     head = [c for c in head if c in frame.columns]
     tail = ["message", "model_sha256", "settings_key", "note", "host"]
     frame = pd.concat([frame[head], extra, frame[tail]], axis=1)

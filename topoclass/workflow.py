@@ -17,6 +17,7 @@ from topoclass.features import FeatureSettings, RecordResult, measure_patterns
 from topoclass.labels import LabelSet, read_labels
 from topoclass.model import (
     CLASSIFIERS,
+    DEFAULT_ALPHA,
     DEFAULT_CLASSIFIER,
     TrainedModel,
     load_model,
@@ -26,6 +27,7 @@ from topoclass.model import (
     train_model,
     validate_model,
 )
+from topoclass.model.conformal import check_alpha
 from topoclass.vectorize import FEATURE_SETS, AcquisitionContext, make_features
 
 #: Feature sets compared by ``select=True``, each with the chosen classifier.
@@ -87,6 +89,7 @@ def train_from_labels(
     cache_dir: str | Path | None = None,
     progress: bool = False,
     figures: bool = True,
+    alpha: float = DEFAULT_ALPHA,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -117,7 +120,10 @@ def train_from_labels(
     figures : bool
         Also write the cross-validation figures and the permutation importance of the
         features into the model folder (:func:`topoclass.report.write_training_figures`).
+    alpha : float
+        Error rate of the review band (:class:`topoclass.model.ReviewBand`).
     """
+    check_alpha(alpha)
     if feature_set not in FEATURE_SETS:
         make_features(feature_set)  # raises the error that lists the valid names
     if classifier not in CLASSIFIERS:
@@ -143,12 +149,14 @@ def train_from_labels(
         model, comparison = select_model(
             records, y, groups, candidates=candidates, cv=cv, seed=seed,
             calibration=calibration, progress=progress, context=AcquisitionContext(),
+            alpha=alpha,
         )
     else:
         model = train_model(
             records, y, groups, features=make_features(feature_set),
             feature_set_name=feature_set, classifier=classifier, cv=cv,
             calibration=calibration, seed=seed, progress=progress, context=AcquisitionContext(),
+            alpha=alpha,
         )
     model.settings["features"] = dataclasses.asdict(settings)
     if model_dir is None:

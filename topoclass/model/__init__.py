@@ -8,6 +8,7 @@ The model stage of the pipeline, one concept per module:
 ``calibration``           which calibration, fitted on grouped folds; the evidence limit
 ``evaluation``            metrics, reliability tables, grouped cross-validation
 ``novelty``               is an image like the training images (Mahalanobis, ranges)
+``conformal``             the review band: conformal prediction sets and verdicts
 ``trained``               the trained model; train, select, validate
 ``storage``               model folder: skops archive, JSON card, trusted types only
 ========================  ===============================================================
@@ -30,6 +31,13 @@ from topoclass.model.calibration import (
     choose_calibration,
     fit_calibrated,
     limit_by_evidence,
+)
+from topoclass.model.conformal import (
+    DEFAULT_ALPHA,
+    REVIEW,
+    UNFAMILIAR,
+    ReviewBand,
+    conformal_quantile,
 )
 from topoclass.model.evaluation import (
     CVReport,
@@ -60,7 +68,8 @@ from topoclass.model.trained import TrainedModel, select_model, train_model, val
 
 __all__ = [
     "CALIBRATION_METHODS", "CARD_FILE", "CARD_FORMAT", "CLASSIFIERS", "CVReport",
-    "DEFAULT_CLASSIFIER", "ISOTONIC_MIN_PER_CLASS", "ISOTONIC_MIN_SAMPLES", "MODEL_FILE",
+    "DEFAULT_ALPHA", "DEFAULT_CLASSIFIER", "REVIEW", "ReviewBand", "UNFAMILIAR",
+    "conformal_quantile", "ISOTONIC_MIN_PER_CLASS", "ISOTONIC_MIN_SAMPLES", "MODEL_FILE",
     "MahalanobisNovelty", "ModelVersionWarning", "NonFiniteAsMissing", "REPORT_FILE",
     "RangeNovelty", "TrainedModel", "build_pipeline", "choose_calibration",
     "cross_validate_model", "fit_calibrated", "fold_splits", "limit_by_evidence", "load_model",

@@ -90,6 +90,8 @@ def save_model(model: TrainedModel, directory: str | Path, *,
                             model.range_check.high_, strict=True)},
                     "range_tolerance": None if model.range_check is None
                     else model.range_check.tolerance},
+        "review_band": None if model.review_band is None else jsonable(
+            model.review_band.describe()),
         "settings": jsonable(model.settings),
         "cv": jsonable(model.cv_report.summary()),
         "versions": package_versions(),

@@ -13,6 +13,7 @@ from sklearn.pipeline import Pipeline
 from topoclass._progress import step_progress
 from topoclass.errors import TopoclassError
 from topoclass.model.calibration import choose_calibration, fit_calibrated, limit_by_evidence
+from topoclass.model.conformal import DEFAULT_ALPHA, UNFAMILIAR, ReviewBand
 from topoclass.model.evaluation import CVReport, cross_validate_model, metrics_from_probabilities
 from topoclass.model.novelty import MahalanobisNovelty, RangeNovelty
 from topoclass.model.pipeline import DEFAULT_CLASSIFIER, build_pipeline
@@ -40,6 +41,11 @@ class TrainedModel:
         Training images per class (string keys).
     settings : dict
         Everything needed to repeat the training (cv, seed, n_samples, n_groups, …).
+    range_check : RangeNovelty or None
+        Range check of the acquisition measures.
+    review_band : ReviewBand or None
+        Conformal prediction sets from the out-of-fold probabilities (None in models written
+        before the band existed: their verdict is the top class unless unfamiliar).
     """
 
     estimator: Any
@@ -53,6 +59,7 @@ class TrainedModel:
     class_counts: dict
     settings: dict
     range_check: RangeNovelty | None = None
+    review_band: ReviewBand | None = None
 
     def predict_proba(self, X) -> np.ndarray:
         """Calibrated probability of each class, columns in the order of ``classes``.
@@ -106,10 +113,26 @@ class TrainedModel:
     def is_unfamiliar(self, X) -> np.ndarray:
         return self.unfamiliarity(X) > 1.0
 
+    def verdicts(self, proba, unfamiliarity, *, alpha: float | None = None) -> list[str]:
+        """Per image: its class, ``review`` or ``unfamiliar``, from :meth:`assess` output.
+
+        The review band (:class:`ReviewBand`) at the model's error rate, or at ``alpha``
+        when given; an image the novelty checks flag is ``unfamiliar`` whatever its set.
+        """
+        flagged = np.asarray(unfamiliarity, dtype=float) > 1.0
+        band = self.review_band
+        if band is None:
+            top = self.classes[np.argmax(np.asarray(proba), axis=1)]
+            return [UNFAMILIAR if odd else str(c) for c, odd in zip(top, flagged, strict=True)]
+        if alpha is not None and alpha != band.alpha_:
+            band = band.with_alpha(alpha)
+        return band.verdicts(proba, flagged)
+
 
 def train_model(X, y, groups=None, *, features, feature_set_name: str,
                 classifier: str = DEFAULT_CLASSIFIER, cv: int = 5, calibration: str = "auto",
-                seed: int = 0, progress=None, context=None) -> TrainedModel:
+                seed: int = 0, progress=None, context=None,
+                alpha: float = DEFAULT_ALPHA) -> TrainedModel:
     """Cross-validate, then fit the calibrated model and its novelty detector on all data.
 
     Parameters
@@ -138,6 +161,9 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
     context : scikit-learn transformer or None
         Acquisition measures for the range check of :class:`RangeNovelty` (for example
         :class:`topoclass.vectorize.AcquisitionContext`); None for none.
+    alpha : float
+        Error rate of the review band (:class:`ReviewBand`), fitted on the out-of-fold
+        probabilities of the cross-validation.
 
     Returns
     -------
@@ -153,12 +179,13 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
         return _fit_final(pipeline, X, y, groups, report, feature_set_name=feature_set_name,
                           classifier=classifier, method=method, reason=reason,
                           calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
-                          context=context)
+                          context=context, alpha=alpha)
 
 
 def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]],
                  cv: int = 5, seed: int = 0, calibration: str = "auto",
-                 progress=None, context=None) -> tuple[TrainedModel, list[dict]]:
+                 progress=None, context=None,
+                 alpha: float = DEFAULT_ALPHA) -> tuple[TrainedModel, list[dict]]:
     """Compare (feature set, transformer, classifier) candidates and train the best.
 
     Every candidate is cross-validated on the same folds exactly as :func:`train_model` would
@@ -199,7 +226,7 @@ def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]
                            feature_set_name=rows[best]["feature_set"],
                            classifier=rows[best]["classifier"], method=method, reason=reason,
                            calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
-                           context=context)
+                           context=context, alpha=alpha)
     model.settings["selected_from"] = [dict(r) for r in rows]
     return model, rows
 
@@ -225,8 +252,10 @@ def validate_model(model: TrainedModel, X, y) -> dict:
 
 
 def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, method, reason,
-               calibration_requested, cv, seed, bar, context=None) -> TrainedModel:
+               calibration_requested, cv, seed, bar, context=None,
+               alpha=DEFAULT_ALPHA) -> TrainedModel:
     y = np.asarray(y)
+    band = ReviewBand(alpha).fit(report.oof_proba, report.y_true, report.classes)
     groups_arr = None if groups is None else np.asarray(groups)
     bar.step("fitting the novelty detector")
     preprocess = Pipeline(clone(pipeline).steps[:-1])
@@ -254,5 +283,5 @@ def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, 
         feature_set_name=feature_set_name, classifier=classifier, calibration=method,
         calibration_reason=reason,
         class_counts={str(c): int(n) for c, n in zip(classes, counts, strict=True)},
-        settings=settings, range_check=range_check,
+        settings=settings, range_check=range_check, review_band=band,
     )

@@ -85,10 +85,14 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     base = scores_csv.parent
 
     ok = [r for r in rows if r.get("status") == "ok"]
-    unfamiliar = [r for r in ok if r.get("unfamiliar") == "yes"]
+    unfamiliar = [r for r in ok if _is_unfamiliar(r)]
+    # The review band's verdict (files from before it have no verdict column).
+    review = [r for r in ok if r.get("verdict") == "review"]
     failed = [r for r in rows if r.get("status") != "ok"]
-    # Detail views: unfamiliar images first (they are the ones to check by eye), then the rest.
-    detail_order = unfamiliar + [r for r in ok if r.get("unfamiliar") != "yes"]
+    # Detail views: unfamiliar images first (they are the ones to check by eye), then review,
+    # then the rest.
+    detail_order = unfamiliar + review + [r for r in ok if not _is_unfamiliar(r)
+                                          and r.get("verdict") != "review"]
     detail_ids = {id(r) for r in detail_order[:max(details, 0)]}
     settings = FeatureSettings.from_model(model)
 
@@ -115,12 +119,13 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         if bar is not None:
             bar.__exit__(None, None, None)
 
-    # As in the scoring summary: an unfamiliar image's class is not counted with the rest.
-    counts = Counter(r.get("predicted", "") for r in ok if r.get("unfamiliar") != "yes")
+    # As in the scoring summary: an unfamiliar or review image's class is not counted.
+    counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
+                     if not _is_unfamiliar(r) and r.get("verdict") != "review")
     page = _report_page(
         scores_csv=scores_csv, rows=rows, classes=classes, measures=measures, counts=counts,
-        failed=failed, unfamiliar=unfamiliar, thumbs=thumbs, links=links, details=details,
-        thumbnails=thumbnails, model=model, caution=CAUTION,
+        failed=failed, unfamiliar=unfamiliar, review=review, thumbs=thumbs, links=links,
+        details=details, thumbnails=thumbnails, model=model, caution=CAUTION,
     )
     tmp = out_html.with_name(out_html.name + ".tmp")
     tmp.write_text(page, encoding="utf-8")
@@ -220,7 +225,12 @@ def _sort_value(value) -> str:
     return repr(v) if math.isfinite(v) else ""
 
 
-def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, thumbs,
+def _is_unfamiliar(row) -> bool:
+    return row.get("unfamiliar") == "yes" or row.get("verdict") == "unfamiliar"
+
+
+def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
+                 thumbs,
                  links, details, thumbnails, model, caution) -> str:
     colour = {c: CLASS_COLOURS[k % len(CLASS_COLOURS)] for k, c in enumerate(classes)}
     esc = html.escape
@@ -230,6 +240,14 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
                      f"{esc(str(getattr(model, 'classifier', '')))}</p>")
     parts.append(f"<p class='caution'><b>Caution.</b> {esc(caution)}</p>")
     n_ok = len(rows) - len(failed)
+    has_verdict = any("verdict" in r for r in rows)
+    if has_verdict:
+        from topoclass.scoring import BAND_NOTE
+
+        alpha = getattr(getattr(model, "review_band", None), "alpha_", None)
+        note = (BAND_NOTE.format(alpha=alpha) if alpha is not None else
+                BAND_NOTE.replace(" (error rate alpha = {alpha:g})", ""))
+        parts.append(f"<p class='note' id='band-note'>{esc(note)}</p>")
     summary = "".join(
         f"<tr><td><span class='dot' style='background:{colour[c]}'></span>{esc(c)}</td>"
         f"<td class='n'>{counts.get(c, 0)}</td></tr>" for c in classes
@@ -239,11 +257,13 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         f"<th>images</th></tr>{summary}"
         f"<tr><td>unfamiliar (check by eye; not counted above)</td>"
         f"<td class='n'>{len(unfamiliar)}</td></tr>"
-        f"<tr><td>failed</td><td class='n'>{len(failed)}</td></tr>"
+        + (f"<tr><td>review (more than one class cannot be ruled out; not counted above)</td>"
+           f"<td class='n'>{len(review)}</td></tr>" if has_verdict else "")
+        + f"<tr><td>failed</td><td class='n'>{len(failed)}</td></tr>"
         f"<tr><th>scored</th><th class='n'>{n_ok}</th></tr></table>"
     )
     index = {id(r): n for n, r in enumerate(rows)}
-    if failed or unfamiliar:
+    if failed or unfamiliar or review:
         items = []
         for r in failed:
             message = r.get("message", "") or "no message"
@@ -256,6 +276,13 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
             items.append(f"<li class='unfamiliar'><b>unfamiliar</b> {esc(r['image'])} "
                          f"(predicted {esc(r.get('predicted', ''))}){link}: "
                          f"{esc(r.get('message', ''))}</li>")
+        for r in review:
+            n = index[id(r)]
+            link = (f" — <a href='{esc(links[n])}'>detail</a>" if n in links else "")
+            plausible = ", ".join(f"{c} {_num(r.get(f'p_{c}'), 2)}" for c in classes)
+            items.append(f"<li class='review'><b>review</b> {esc(r['image'])} "
+                         f"(top class {esc(r.get('predicted', ''))}; {esc(plausible)}){link}"
+                         "</li>")
         parts.append("<h2>Look at these first</h2><ul id='attention'>" + "".join(items)
                      + "</ul>")
     notes = []
@@ -265,6 +292,8 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
     parts.append("<h2>All images</h2><p class='note'>Click a column header to sort; click "
                  "again to reverse. " + "; ".join(notes).capitalize() + ".</p>")
     head = ["<th data-type='num'>#</th><th>image</th><th data-type='text'>predicted</th>"]
+    if has_verdict:
+        head += ["<th data-type='text'>verdict</th>"]
     head += [f"<th data-type='num' class='p'>p {esc(c)}</th>" for c in classes]
     head += ["<th data-type='text'>unfamiliar</th>"]
     head += [f"<th data-type='num'>{esc(m)}</th>" for m in measures]
@@ -278,6 +307,9 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
                  f"<td class='image'>{img}<span>{esc(Path(r['image']).name)}</span></td>"]
         pred = r.get("predicted", "") if ok else "failed"
         cells.append(f"<td data-value='{esc(pred)}'>{esc(pred)}</td>")
+        if has_verdict:
+            verdict = r.get("verdict", "") if ok else ""
+            cells.append(f"<td data-value='{esc(verdict)}'>{esc(verdict)}</td>")
         for c in classes:
             v = _sort_value(r.get(f"p_{c}")) if ok else ""
             width = f"{100 * float(v):.1f}" if v else "0"
@@ -298,7 +330,8 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         else:
             last = f"<span class='msg'>{esc(r.get('message', ''))}</span>"
         cells.append(f"<td>{last}</td>")
-        klass = "failed" if not ok else ("unfamiliar" if flag == "yes" else "")
+        klass = ("failed" if not ok else "unfamiliar" if _is_unfamiliar(r)
+                 else "review" if r.get("verdict") == "review" else "")
         body.append(f"<tr class='{klass}'>" + "".join(cells) + "</tr>")
     parts.append("<table id='scores' class='sortable'><thead><tr>" + "".join(head)
                  + "</tr></thead><tbody>" + "".join(body) + "</tbody></table>")
