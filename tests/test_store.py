@@ -415,3 +415,32 @@ def test_report_rows_from_a_store_round_trip(tmp_path):
     assert rows[0]["unfamiliar"] == "no" and rows[1]["unfamiliar"] == ""
     assert float(rows[0]["p_a"]) == 0.9 and rows[1]["message"] == "b.png: empty"
     store.close()
+
+
+def test_trend_over_stored_batches_against_a_reference_batch(tmp_path):
+    # The chart itself is checked in test_trend.py; here: the store feeds it, in stored order,
+    # and a reference batch sets the limits.
+    db = tmp_path / "results.db"
+    store = open_store(db)
+    rng = np.random.default_rng(5)
+    reference = [_row(f"ref{i}.png", f"r{i}", 0.9, vacancies_per_1000=v)
+                 for i, v in enumerate(4.0 + rng.normal(0, 0.2, 20))]
+    _start(store, note="reference lot").add(reference)
+    line = [_row(f"line{i}.png", f"l{i}", 0.9, vacancies_per_1000=4.0 + 3.0 * (i == 7))
+            for i in range(12)]
+    _start(store, note="line A").add(line)
+    store.close()
+    done = subprocess.run([sys.executable, "-m", "topoclass", "trend", "--store", str(db),
+                           "--reference-batch", "1", "--charts", "vacancies_per_1000",
+                           "--out", str(tmp_path / "trend")],
+                          env={**ENV, "MPLBACKEND": "Agg"}, capture_output=True, text=True,
+                          timeout=120)
+    assert done.returncode == 0, done.stderr
+    table = pd.read_csv(tmp_path / "trend" / "trend.csv")
+    assert len(table) == 32 and list(table["batch"].unique()) == [1, 2]
+    flagged = table[table["vacancies_per_1000_flags"].fillna("").str.contains("beyond_3s")]
+    assert [Path(p).name for p in flagged["image"]] == ["line7.png"]
+    both = subprocess.run([sys.executable, "-m", "topoclass", "trend", "x.csv", "--store",
+                           str(db), "--out", str(tmp_path / "t2")], env=ENV,
+                          capture_output=True, text=True, timeout=120)
+    assert both.returncode == 2 and "not both" in both.stderr

@@ -189,6 +189,10 @@ def score(
                              "store."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
+                                "at most this many images, the most doubtful first."),
+    no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
+                                   "report` makes the page later)."),
 ) -> None:
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
@@ -216,7 +220,10 @@ def score(
     typer.echo(summary_text(summary))
     from topoclass.report import write_batch_report
 
-    typer.echo(f"report: {write_batch_report(out, model=trained, progress=True)}")
+    if not no_report:
+        page = write_batch_report(out, model=trained, details=details, jobs=jobs,
+                                  cache_dir=cache, progress=True)
+        typer.echo(f"report: {page}")
     if summary.scored == 0 and summary.skipped == 0:
         raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
                              "see the message column")
@@ -267,8 +274,11 @@ def report(
                                           "the model whose hash starts so."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
-    details: int = typer.Option(200, "--details", min=0,
-                                help="Detail views for at most this many images."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views for at most this "
+                                "many images, the most doubtful first."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder the scoring "
+                                      "used (its sites spare measuring the images again)."),
 ) -> None:
     """Rebuild the HTML report of a scores CSV (for example after a killed run)."""
     from topoclass.model import load_model
@@ -283,7 +293,8 @@ def report(
         scores_csv = _scores_from_store(store, out, batch, since, model_hash)
     elif scores_csv is None:
         raise TopoclassError("report needs a scores CSV or --store STORE; give one of them")
-    path = write_batch_report(scores_csv, out, model=trained, details=details, progress=True)
+    path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
+                              cache_dir=cache, progress=True)
     typer.echo(f"report: {path}")
 
 
@@ -368,6 +379,67 @@ def suggest(
             typer.echo(str(path))
 
 
+
+@app.command()
+def trend(
+    scores_csv: list[Path] | None = typer.Argument(None, metavar="[SCORES_CSV]...",
+                                                   help="scores.csv files, one per batch, in "
+                                                   "acquisition order (or use --store)."),
+    out: Path = typer.Option(..., "--out", help="Folder for trend.png, trend.csv and limits."),
+    by: str | None = typer.Option(None, "--by", help="Order by this column (times or numbers), "
+                                  "or file-time for the image files' times; default: as read."),
+    reference: Path | None = typer.Option(None, "--reference", help="scores.csv of reference "
+                                          "images that set the control limits."),
+    baseline: int = typer.Option(20, "--baseline", min=2, help="Without --reference, the "
+                                 "first this many images set the limits."),
+    charts: str | None = typer.Option(None, "--charts", help="Comma-separated columns to "
+                                      "chart (default: amounts, then class probabilities)."),
+    store: str | None = typer.Option(None, "--store", help="Chart the rows of a results store "
+                                     "(in the order they were stored) instead of CSV files."),
+    since: str | None = typer.Option(None, "--since", help="With --store: rows scored since "
+                                     "this date (YYYY-MM-DD, UTC)."),
+    model_hash: str | None = typer.Option(None, "--model-hash", help="With --store: rows of "
+                                          "the model whose hash starts so."),
+    reference_batch: int | None = typer.Option(None, "--reference-batch", help="With --store: "
+                                               "the stored batch whose images set the limits."),
+) -> None:
+    """Chart amounts and class probabilities over a run, with control limits and run rules."""
+    from topoclass.scoring import CAUTION
+    from topoclass.trend import (
+        TREND_CAUTION,
+        read_score_tables,
+        trend_table,
+        write_trend,
+    )
+
+    if store is not None:
+        if scores_csv:
+            raise TopoclassError(f"trend takes scores CSV files or --store {store}, not both; "
+                                 "give one of them")
+        table, ref = _trend_rows_from_store(store, since, model_hash, reference_batch)
+        if reference is not None:
+            ref = read_score_tables([reference])
+    elif not scores_csv:
+        raise TopoclassError("trend needs scores CSV files or --store STORE; give one of them")
+    else:
+        table = read_score_tables(scores_csv)
+        ref = read_score_tables([reference]) if reference is not None else None
+    chosen = [c.strip() for c in charts.split(",") if c.strip()] if charts else None
+    result = trend_table(table, charts=chosen, by=by, reference=ref, baseline=baseline)
+    paths = write_trend(result, out)
+    flagged = result.table[result.table["flagged"]]
+    source = "the reference set" if ref is not None else f"the first {baseline} images"
+    typer.echo(f"charted {len(result.table)} images, {len(result.charts)} charts; "
+               f"limits from {source}")
+    for _, row in flagged.iterrows():
+        fired = [f"{c}: {row[c + '_flags']}" for c in result.charts if row[c + "_flags"]]
+        typer.echo(f"  flagged {row['position']:>4} {row['image']}  ({'; '.join(fired)})")
+    for path in paths:
+        typer.echo(f"wrote {path}")
+    typer.echo("")
+    typer.echo("Caution: " + TREND_CAUTION + " " + CAUTION)
+
+
 store_app = typer.Typer(no_args_is_help=True, help="Query the results store of many batches.")
 app.add_typer(store_app, name="store")
 
@@ -414,6 +486,22 @@ def store_batches(
         state = " (unfinished)" if pd.isna(r["finished_utc"]) else ""
         typer.echo(f"{r['batch']:>5}  {started:<19}  {r['model_sha256'][:12]:<12} "
                    f"{r['rows']:>6} {failed:>6}  {r['host'][:16]:<16} {r['note']}{state}")
+
+
+def _trend_rows_from_store(store, since, model_hash, reference_batch):
+    """The stored rows to chart, and those of the reference batch (None without one)."""
+    from topoclass.store import open_store, parse_since
+
+    with open_store(store) as opened:
+        table = opened.results(since=parse_since(since), model=model_hash)
+        ref = None if reference_batch is None else opened.results(batch=reference_batch)
+    if table.empty:
+        raise TopoclassError(f"{opened.name}: no stored rows match; `topoclass store batches` "
+                             "lists what it holds")
+    if ref is not None and ref.empty:
+        raise TopoclassError(f"{opened.name}: batch {reference_batch} holds no rows; "
+                             "`topoclass store batches` lists the batches")
+    return table, ref
 
 
 def _scores_from_store(store, page: Path, batch, since, model_hash) -> Path:
