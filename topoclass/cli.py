@@ -15,6 +15,11 @@ import typer
 from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
+_REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of the frame, "
+                "e.g. 0,0,1,0.9); a data bar inside it is still found and left out.")
+_NO_AUTO_REGION_HELP = "Do not look for an instrument data bar to leave out."
+
+
 _FEATURE_HELP = "two-bar, order, topology or all"
 _ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
                "true class for at most this share of images like the training set.")
@@ -52,7 +57,10 @@ def main() -> None:
     # With no arguments at all the help is what a new user needs, not an error.
     args = sys.argv[1:] or ["--help"]
     try:
-        app(args=args, prog_name="topoclass", standalone_mode=False)
+        # Outside standalone mode typer returns the code of a `typer.Exit` instead of exiting.
+        code = app(args=args, prog_name="topoclass", standalone_mode=False)
+        if isinstance(code, int) and code:
+            sys.exit(code)
     except TopoclassError as exc:
         typer.echo(f"error: {_one_line(exc)}", err=True)
         sys.exit(2)
@@ -83,12 +91,15 @@ def inspect(
     ),
     max_pixels: int = typer.Option(100_000_000, "--max-pixels", min=1,
                                    help="Refuse larger images (decompression-bomb guard)."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
 ) -> None:
     """Find the lattice sites of one micrograph and report its order measures."""
     from topoclass.features import FeatureSettings
     from topoclass.inspection import inspect_image
 
-    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels)
+    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels,
+                               **_region_options(region, no_auto_region))
     summary = inspect_image(image, out=out, settings=settings)
     if as_json:
         typer.echo(json.dumps(summary, sort_keys=False))
@@ -129,16 +140,25 @@ def train(
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    zoom_range: str | None = typer.Option(
+        None, "--zoom-range", help="Also train on rescaled copies of every image at zoom "
+        "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
+    zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
+                                    help="Rescaled copies per image with --zoom-range."),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
+    from topoclass.augment import parse_zoom_range
     from topoclass.features import FeatureSettings
     from topoclass.workflow import train_from_labels
 
+    settings = FeatureSettings(polarity=polarity, **_region_options(region, no_auto_region))
     run = train_from_labels(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
-        settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
-        alpha=alpha,
+        settings=settings, jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -155,11 +175,15 @@ def validate(
                             help="Held-out label sheet or class folders."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
 ) -> None:
     """Measure a trained model on a held-out labelled set."""
     from topoclass.workflow import validate_from_labels
 
-    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True)
+    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True,
+                               overrides=_region_options(region, no_auto_region))
     _echo_failures(run.failures)
     m = run.metrics
     typer.echo(f"held-out images {m['n_samples']}: accuracy {m['accuracy']:.3f}, "
@@ -179,7 +203,9 @@ def score(
     out: Path = typer.Option(..., "--out", help="Results CSV (one row per image)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
     resume: bool = typer.Option(False, "--resume", help="Keep finished rows; score the rest."),
-    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output "
+                                   "(the CSV and its report page)."),
+    strict: bool = typer.Option(False, "--strict", help="Exit with code 1 if any image failed."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
@@ -189,19 +215,31 @@ def score(
                              "store."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
     details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
                                 "at most this many images, the most doubtful first."),
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
                                    "report` makes the page later)."),
 ) -> None:
-    """Score micrographs in batch with a probability for each class."""
+    """Score micrographs in batch with a probability for each class.
+
+    The last line printed is `failed: F of N`, for scripts.
+    """
     import dataclasses
 
     from topoclass.features import FeatureSettings
     from topoclass.images import collect_image_paths
     from topoclass.model import load_model
+    from topoclass.report import batch_report_paths, write_batch_report
     from topoclass.scoring import score_images, summary_text
 
+    page, _ = batch_report_paths(out)
+    if page.exists() and not (resume or overwrite):
+        # Refused before any work, like the CSV itself; --resume continues the same batch.
+        raise TopoclassError(f"{page}: the report page exists; pass --overwrite to replace it, "
+                             "--resume to continue its batch, or give --out another name")
     trained = load_model(model_dir)
     paths = collect_image_paths(inputs)
     if not paths:
@@ -210,6 +248,7 @@ def score(
     settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
+    settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
     recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
                                               len(paths), note)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
@@ -218,19 +257,20 @@ def score(
     if recorder is not None:
         recorder.store.close()
     typer.echo(summary_text(summary))
-    from topoclass.report import write_batch_report
-
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
-                                  cache_dir=cache, progress=True)
+                                  cache_dir=cache, overwrite=True, progress=True)
         typer.echo(f"report: {page}")
-    if summary.scored == 0 and summary.skipped == 0:
-        raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
+    typer.echo(f"failed: {summary.total_failed} of {summary.given}")
+    if summary.total_failed == summary.given:
+        raise TopoclassError(f"{out}: none of the {summary.given} images could be scored; "
                              "see the message column")
     if store_problem is not None or summary.store_error is not None:
         from topoclass.errors import StoreError
 
         raise StoreError(f"{store_problem or summary.store_error} (every row is in {out})")
+    if strict and summary.total_failed:
+        raise typer.Exit(1)
 
 
 def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
@@ -262,8 +302,9 @@ def report(
     scores_csv: Path | None = typer.Argument(None, metavar="[SCORES_CSV]",
                                              help="Results CSV written by `topoclass score` "
                                              "(or use --store)."),
-    out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
-                                    "beside the CSV)."),
+    out: Path | None = typer.Option(None, "--out", help="HTML file (default: the CSV's name "
+                                    "with .html, e.g. scores.html)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing page."),
     store: str | None = typer.Option(None, "--store", help="Build the page from a results "
                                      "store instead of a CSV (see --batch, --since, "
                                      "--model-hash)."),
@@ -294,7 +335,7 @@ def report(
     elif scores_csv is None:
         raise TopoclassError("report needs a scores CSV or --store STORE; give one of them")
     path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
-                              cache_dir=cache, progress=True)
+                              cache_dir=cache, overwrite=overwrite, progress=True)
     typer.echo(f"report: {path}")
 
 
@@ -305,6 +346,7 @@ def demo(
     jobs: int = typer.Option(2, "--jobs", min=1, help="Parallel workers."),
 ) -> None:
     """Run the whole job on invented anodic-alumina micrographs."""
+    from topoclass.report import batch_report_paths
     from topoclass.scoring import summary_text
     from topoclass.workflow import run_demo
 
@@ -319,7 +361,7 @@ def demo(
     typer.echo(f"CV report:  {run.training.directory / 'cv_report.md'}")
     typer.echo(f"validation: {run.validation.report}")
     typer.echo(f"scores:     {run.scores}")
-    report = run.scores.parent / "report.html"
+    report, _ = batch_report_paths(run.scores)
     if report.exists():
         typer.echo(f"report:     {report}")
 
@@ -541,6 +583,18 @@ def _human_summary(summary: dict) -> str:
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+def _region_options(region: str | None, no_auto_region: bool) -> dict:
+    """The FeatureSettings fields the region options set (none when not given)."""
+    from topoclass.region import parse_region
+
+    options: dict = {}
+    if region is not None:
+        options["region"] = parse_region(region)
+    if no_auto_region:
+        options["auto_region"] = False
+    return options
 
 
 def _one_line(exc: BaseException) -> str:

@@ -74,6 +74,37 @@ def labelled_records(
     return records, y, groups, failures
 
 
+def zoomed_records(
+    labels: LabelSet,
+    settings: FeatureSettings,
+    factors,
+    *,
+    jobs: int = 1,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> tuple[list, np.ndarray, np.ndarray, int]:
+    """Records of rescaled copies of a label set's images (:mod:`topoclass.augment`).
+
+    Every image gets one copy per zoom factor, with the image's label and group (the image
+    itself when the sheet has no groups), so copies of one image stay in one fold. Returns
+    ``(records, labels, groups, copies that could not be measured)``; a copy that fails (too
+    few sites at a small zoom) is left out.
+    """
+    factors = [float(f) for f in factors]
+    paths = [p for p in labels.images for _ in factors]
+    results = measure_patterns(
+        paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
+        description="zoomed copies", zooms=[f for _ in labels.images for f in factors],
+    )
+    owner = [i for i in range(len(labels.images)) for _ in factors]
+    keep = [k for k, r in enumerate(results) if r.ok]
+    records = [results[k].record for k in keep]
+    y = np.array([labels.labels[owner[k]] for k in keep])
+    names = labels.groups if labels.groups is not None else [str(p) for p in labels.images]
+    groups = np.array([names[owner[k]] for k in keep])
+    return records, y, groups, len(results) - len(keep)
+
+
 def train_from_labels(
     labels_source: str | Path,
     model_dir: str | Path | None = None,
@@ -90,6 +121,8 @@ def train_from_labels(
     progress: bool = False,
     figures: bool = True,
     alpha: float = DEFAULT_ALPHA,
+    zoom_range: tuple[float, float] | None = None,
+    zoom_copies: int = 3,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -122,6 +155,12 @@ def train_from_labels(
         features into the model folder (:func:`topoclass.report.write_training_figures`).
     alpha : float
         Error rate of the review band (:class:`topoclass.model.ReviewBand`).
+    zoom_range : (lo, hi), optional
+        Also train on ``zoom_copies`` rescaled copies of every image at zoom factors spread
+        over this range (:mod:`topoclass.augment`), so the model covers those spacings in
+        pixels; the card records the range and the spacings reached.
+    zoom_copies : int
+        Copies per image with ``zoom_range``.
     """
     check_alpha(alpha)
     if feature_set not in FEATURE_SETS:
@@ -138,6 +177,22 @@ def train_from_labels(
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
         _check_after_failures(labels, y, groups, cv, failures)
+    augmentation = None
+    if zoom_range is not None:
+        from topoclass.augment import zoom_factors
+
+        factors = zoom_factors(zoom_range, zoom_copies)
+        extra, y_extra, g_extra, n_lost = zoomed_records(
+            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress
+        )
+        if groups is None:  # the image is the group: its copies must not cross a split
+            ok = {str(p) for p in labels.images} - {str(r.path) for r in failures}
+            groups = np.array([str(p) for p in labels.images if str(p) in ok])
+        records, y, groups = records + extra, np.concatenate([y, y_extra]), np.concatenate(
+            [groups, g_extra])
+        augmentation = {"zoom_range": [float(v) for v in zoom_range],
+                        "zoom_factors": [float(f) for f in factors],
+                        "copies_measured": len(extra), "copies_failed": int(n_lost)}
     comparison = None
     if select:
         candidates = [(name, make_features(name), classifier) for name in SELECT_FEATURE_SETS]
@@ -159,6 +214,13 @@ def train_from_labels(
             alpha=alpha,
         )
     model.settings["features"] = dataclasses.asdict(settings)
+    model.settings["augmentation"] = augmentation
+    if model.range_check is not None:
+        names = list(model.range_check.names_)
+        if "spacing_px" in names:
+            k = names.index("spacing_px")
+            model.settings["spacing_px_range"] = [float(model.range_check.low_[k]),
+                                                  float(model.range_check.high_[k])]
     if model_dir is None:
         sheet = labels.source if labels.source.is_dir() else labels.source.parent
         model_dir = Path("models") / f"{sheet.name}-{model.feature_set_name}-{model.classifier}"
@@ -171,7 +233,7 @@ def train_from_labels(
     if figures:
         from topoclass.report import write_training_figures
 
-        write_training_figures(model, directory, records, y, seed=seed)
+        write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
 
 
@@ -183,16 +245,19 @@ def validate_from_labels(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    overrides: dict | None = None,
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
     Writes ``validation.md`` and the validation figures (confusion matrix, reliability, per
-    class) into ``out`` (default: the model folder) and returns the metrics.
+    class) into ``out`` (default: the model folder) and returns the metrics. ``overrides``
+    replaces fields of the model's :class:`FeatureSettings` (for example the region rule).
     """
     model = load_model(model_dir)
     labels = read_labels(labels_source)
+    settings = dataclasses.replace(FeatureSettings.from_model(model), **(overrides or {}))
     records, y, _, failures = labelled_records(
-        labels, FeatureSettings.from_model(model), jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
     )
     if not records:
         raise LabelSheetError(
@@ -262,7 +327,7 @@ def run_demo(
     Makes a labelled training set and a separate "production" batch (other simulated membrane
     samples, another seed, plus a photograph of something else and a truncated file, as a real
     line delivers them), trains a model with grouped cross-validation, validates it on the
-    production batch's labels, and scores that batch into ``scores.csv`` with ``report.html``
+    production batch's labels, and scores that batch into ``scores.csv`` with ``scores.html``
     beside it.
     """
     from topoclass.images import collect_image_paths
@@ -299,7 +364,7 @@ def run_demo(
     )
     from topoclass.report import write_batch_report
 
-    write_batch_report(scores, model=training.model, progress=progress)
+    write_batch_report(scores, model=training.model, overwrite=True, progress=progress)
     return DemoRun(workdir, training, validation, scores, summary)
 
 

@@ -7,6 +7,8 @@ import csv
 import html
 import io
 import math
+import re
+import shutil
 from collections import Counter
 from pathlib import Path
 
@@ -30,14 +32,25 @@ MAX_THUMBNAILS = 2000
 _THUMB_PX = 72  # longest side of an embedded thumbnail
 
 
+def batch_report_paths(scores_csv: str | Path,
+                       out_html: str | Path | None = None) -> tuple[Path, Path]:
+    """Where the page of a ``scores.csv`` goes: ``scores.html`` and its folder ``scores_files/``.
+
+    Named after the CSV, so that two batches scored into one folder keep a page each.
+    """
+    out_html = Path(out_html) if out_html is not None else Path(scores_csv).with_suffix(".html")
+    return out_html, out_html.with_name(out_html.stem + "_files")
+
+
 def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = None, *,
                        model=None, details: int = MAX_DETAILS,
                        thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
-                       cache_dir: str | Path | None = None, progress: bool = False) -> Path:
+                       cache_dir: str | Path | None = None, overwrite: bool = False,
+                       progress: bool = False) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
-    the sibling folder ``report_files/``) has the counts per class, the failed and unfamiliar
+    the sibling folder ``<page name>_files/``) has the counts per class, the failed and unfamiliar
     images first, then a table sortable by clicking a header — by each class probability and
     each order measure — with a thumbnail, the predicted class, a bar per class probability,
     the unfamiliar flag and a link to a detail view (site overlay, persistence diagram, defect
@@ -50,7 +63,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         A file written by :func:`topoclass.scoring.score_images` (a partly written file from
         a killed run is fine).
     out_html : path, optional
-        Default: ``report.html`` beside ``scores_csv``.
+        Default: the CSV's name with ``.html`` (``scores.csv`` → ``scores.html``), see
+        :func:`batch_report_paths`.
     model : TrainedModel, optional
         Supplies the site-finding settings of the detail views and the model's name.
     details : int
@@ -65,6 +79,9 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         :func:`topoclass.features.default_cache_dir`). A detail view takes the image's sites
         and diagrams from it; an image not found there is measured again, which costs as much
         as scoring it.
+    overwrite : bool
+        Replace an existing page (detail views of images no longer in the CSV are removed);
+        without it an existing page is refused.
     progress : bool
         Show a progress bar while the images are read.
 
@@ -89,9 +106,11 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
                              "by `topoclass score`")
     classes = [c[2:] for c in header if c.startswith("p_")]
     measures = [c for c in MEASURE_COLUMNS if c in header]
-    out_html = Path(out_html) if out_html is not None else scores_csv.with_name("report.html")
+    out_html, files = batch_report_paths(scores_csv, out_html)
+    if out_html.exists() and not overwrite:
+        raise TopoclassError(f"{out_html}: the report page exists; pass --overwrite to replace "
+                             "it or write the scores to a CSV of another name")
     out_html.parent.mkdir(parents=True, exist_ok=True)
-    files = out_html.parent / "report_files"
     base = scores_csv.parent
 
     ok = [r for r in rows if r.get("status") == "ok"]
@@ -124,7 +143,19 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     tmp = out_html.with_name(out_html.name + ".tmp")
     tmp.write_text(page, encoding="utf-8")
     tmp.replace(out_html)
+    _drop_stale_details(files, keep={link.split("/")[1] for link in links.values()})
     return out_html
+
+
+def _drop_stale_details(files: Path, keep: set[str]) -> None:
+    """Remove detail folders this page does not link (left by an earlier batch of that name)."""
+    if not files.is_dir():
+        return
+    for folder in files.iterdir():
+        # Only folders named as _ImageAssets._folder names them: nothing else is ours.
+        if folder.is_dir() and folder.name not in keep and re.fullmatch(r"\d{5}-\w+",
+                                                                          folder.name):
+            shutil.rmtree(folder)
 
 
 def _csv_header(path: Path) -> list[str]:
