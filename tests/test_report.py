@@ -381,6 +381,59 @@ def test_grouped_importance_permutes_a_family_together():
     np.testing.assert_allclose(ours["importances"], ref.importances, rtol=1e-9, atol=1e-12)
 
 
+def _label_copied_into_one_family(seed=0):
+    """60 images in 20 sample groups of 3; family ``psi6_*`` is a noisy one-hot copy of the
+    label, two other families are pure noise. The answer is known by construction."""
+    from sklearn.preprocessing import FunctionTransformer
+
+    rng = np.random.default_rng(seed)
+    classes = np.array(CLASSES)
+    groups = np.repeat(np.arange(20), 3)
+    y = classes[groups % 3]
+    onehot = (y[:, None] == classes[None, :]).astype(float)
+    X = np.hstack([onehot + 0.3 * rng.standard_normal((60, 3)),
+                   rng.standard_normal((60, 6))])
+    names = ["psi6_t0", "psi6_t1", "psi6_t2"] + [f"h1_pimage_b0.{k}0_p0.20" for k in range(3)] \
+        + [f"betti1_t{k}.00" for k in range(3)]
+    step = FunctionTransformer(feature_names_out=lambda *_: np.array(names, dtype=object))
+    return X, y, groups, step
+
+
+def test_importance_finds_the_family_that_holds_the_label():
+    # Known answer by construction: only the psi6 family carries the label. The shipped model's
+    # probabilities are bounded by limit_by_evidence, so no importance may exceed the log-loss
+    # of the bound, -log(1 / (K (n + 1))) (the bound of the probabilities, see its docstring).
+    from topoclass.model import train_model
+
+    X, y, groups, step = _label_copied_into_one_family()
+    model = train_model(X, y, groups, features=step, feature_set_name="known", cv=3, seed=0)
+    imp = report.feature_importance(model, X, y, groups=groups, n_repeats=8, seed=1,
+                                    grouped=True)
+    assert imp["names"] == ["psi6", "h1_pimage", "betti1"]
+    scores = dict(zip(imp["names"], imp["importances_mean"], strict=True))
+    label_family = scores["psi6"]
+    noise = [scores["h1_pimage"], scores["betti1"]]
+    assert label_family > 0.2
+    assert max(noise) < 0.05 and label_family > 5 * max(abs(v) for v in noise)
+    top = -np.log(1.0 / (3 * (60 + 1)))
+    assert imp["importances_max"].max() <= top - imp["baseline_log_loss"] + 1e-9
+    assert imp["across_groups"] and imp["importances"].shape[1] == 8
+
+
+def test_cross_group_permutation_never_keeps_a_value_within_its_group():
+    from topoclass.report.importance import _cross_group_permutation
+
+    rng = np.random.default_rng(3)
+    for _ in range(50):
+        sizes = rng.integers(1, 6, size=rng.integers(3, 12))
+        if sizes.max() * 2 > sizes.sum():
+            continue
+        groups = np.repeat(np.arange(sizes.shape[0]), sizes)
+        source = _cross_group_permutation(groups, rng)
+        np.testing.assert_array_equal(np.sort(source), np.arange(groups.shape[0]))
+        assert np.all(groups[source] != groups)
+
+
 def test_training_figures_of_a_fitted_model(tmp_path):
     from sklearn.datasets import load_iris
 
@@ -393,7 +446,8 @@ def test_training_figures_of_a_fitted_model(tmp_path):
     assert [p.name for p in paths] == ["cv_confusion.png", "cv_reliability.png",
                                        "cv_per_class.png", "importance.png", "importance.csv"]
     lines = (tmp_path / "importance.csv").read_text().splitlines()
-    assert lines[0] == "feature,importance_mean,importance_std" and len(lines) == 5
+    assert lines[0] == ("feature,importance_mean,importance_std,importance_min,importance_max,"
+                        "repeats") and len(lines) == 5
     # Petal measurements (x2, x3) separate the iris species (Fisher 1936; common knowledge).
     assert {lines[1].split(",")[0], lines[2].split(",")[0]} & {"x2", "x3"}
 

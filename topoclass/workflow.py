@@ -247,7 +247,7 @@ def train_from_labels(
     if figures:
         from topoclass.report import write_training_figures
 
-        write_training_figures(model, directory, records, y, seed=seed)
+        write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
 
 
