@@ -147,6 +147,8 @@ def train(
         "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
     zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
                                     help="Rescaled copies per image with --zoom-range."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace the model already in "
+                                   "--model (all its files, the validation report too)."),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
     from topoclass.augment import parse_zoom_range
@@ -159,6 +161,7 @@ def train(
         calibration=calibration, seed=seed, select=select,
         settings=settings, jobs=jobs, cache_dir=cache, progress=True,
         alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
+        overwrite=overwrite,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -173,6 +176,8 @@ def validate(
                             help="Model folder written by `topoclass train`."),
     labels: Path = typer.Argument(..., metavar="LABELS",
                             help="Held-out label sheet or class folders."),
+    out: Path | None = typer.Option(None, "--out", help="Folder for validation.md and its "
+                                    "figures (default: the model folder)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     region: str | None = typer.Option(None, "--region", help=_REGION_HELP
@@ -182,7 +187,8 @@ def validate(
     """Measure a trained model on a held-out labelled set."""
     from topoclass.workflow import validate_from_labels
 
-    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True,
+    run = validate_from_labels(model_dir, labels, out=out, jobs=jobs, cache_dir=cache,
+                               progress=True,
                                overrides=_region_options(region, no_auto_region))
     _echo_failures(run.failures)
     m = run.metrics
