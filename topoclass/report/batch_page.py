@@ -30,6 +30,10 @@ MAX_DETAILS = 200
 MAX_THUMBNAILS = 2000
 
 
+#: Scored images a batch needs for the report's control charts.
+MIN_TREND_IMAGES = 10
+
+
 _THUMB_PX = 72  # longest side of an embedded thumbnail
 
 
@@ -47,7 +51,7 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
                        model=None, details: int = MAX_DETAILS,
                        thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
                        cache_dir: str | Path | None = None, overwrite: bool = False,
-                       progress: bool = False) -> Path:
+                       trend_charts: bool = True, progress: bool = False) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
@@ -83,6 +87,10 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     overwrite : bool
         Replace an existing page (detail views of images no longer in the CSV are removed);
         without it an existing page is refused.
+    trend_charts : bool
+        Add control charts of the amounts and class probabilities in the batch's order
+        (:func:`topoclass.trend.trend_table`, limits from the batch's first images), when the
+        batch has at least :data:`MIN_TREND_IMAGES` scored images.
     progress : bool
         Show a progress bar while the images are read.
 
@@ -136,8 +144,10 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     # As in the scoring summary: an unfamiliar or review image's class is not counted.
     counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
                      if not _is_unfamiliar(r) and r.get("verdict") != "review")
+    trend = _trend_section(scores_csv, len(ok)) if trend_charts else ""
     page = _report_page(
-        scores_csv=scores_csv, rows=rows, classes=classes, measures=measures, counts=counts,
+        trend=trend, scores_csv=scores_csv, rows=rows, classes=classes, measures=measures,
+        counts=counts,
         failed=failed, unfamiliar=unfamiliar, review=review, thumbs=thumbs, links=links,
         details=details, thumbnails=thumbnails, model=model, caution=CAUTION,
     )
@@ -146,6 +156,29 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     tmp.replace(out_html)
     _drop_stale_details(files, keep={link.split("/")[1] for link in links.values()})
     return out_html
+
+
+def _trend_section(scores_csv: Path, n_ok: int) -> str:
+    """Control charts of this batch in file order, or a line saying why there are none."""
+    from topoclass.trend import TREND_CAUTION, read_score_tables, trend_svg, trend_table
+
+    head = "<h2 id='trend'>Over the batch</h2>"
+    if n_ok < MIN_TREND_IMAGES:
+        return (head + f"<p class='note'>{n_ok} scored images: control charts need at least "
+                f"{MIN_TREND_IMAGES}; chart several batches with <code>topoclass trend</code>."
+                "</p>")
+    baseline = min(20, n_ok)
+    try:
+        result = trend_table(read_score_tables([scores_csv]), baseline=baseline)
+    except TopoclassError as exc:
+        return head + f"<p class='note'>No control charts: {html.escape(str(exc))}</p>"
+    flagged = int(result.table["flagged"].sum())
+    return (head + f"<p class='note'>Individuals charts in the order of the scores file; "
+            f"limits (dashed) from its first {baseline} images, so they describe this batch "
+            f"only — for limits from accepted batches use <code>topoclass trend "
+            f"--reference</code>. {flagged} of {len(result.table)} images fired a run rule "
+            f"(larger dots; hover for the image). {html.escape(TREND_CAUTION)}</p>"
+            f"<div class='trend'>{trend_svg(result)}</div>")
 
 
 def _drop_stale_details(files: Path, keep: set[str]) -> None:
@@ -320,7 +353,7 @@ def _is_unfamiliar(row) -> bool:
     return row.get("unfamiliar") == "yes" or row.get("verdict") == "unfamiliar"
 
 
-def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
+def _report_page(*, trend, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
                  thumbs,
                  links, details, thumbnails, model, caution) -> str:
     colour = {c: CLASS_COLOURS[k % len(CLASS_COLOURS)] for k, c in enumerate(classes)}
@@ -428,6 +461,7 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         body.append(f"<tr class='{klass}'>" + "".join(cells) + "</tr>")
     parts.append("<table id='scores' class='sortable'><thead><tr>" + "".join(head)
                  + "</tr></thead><tbody>" + "".join(body) + "</tbody></table>")
+    parts.append(trend)
     parts.append(f"<p class='note'>Made by topoclass from {esc(scores_csv.name)}. Order "
                  "measures: persistence values in units of the site spacing.</p>")
     return html_page("topoclass batch report", "".join(parts), scripts=("sortable.js",))
