@@ -125,15 +125,27 @@ def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> 
     """
     settings = settings or FeatureSettings()
     micrograph = read_micrograph(path, max_pixels=settings.max_pixels)
+    return measure_micrograph(micrograph, settings)
+
+
+def measure_micrograph(micrograph: Micrograph,
+                       settings: FeatureSettings | None = None) -> ImageMeasurement:
+    """Sites, persistence, order measures and amounts of an image already read.
+
+    The part of :func:`measure_image` after reading, so that a piece of a large micrograph
+    (:mod:`topoclass.mapping`) is measured exactly as a whole file is.
+    """
+    settings = settings or FeatureSettings()
+    source = micrograph.source
     pixel_size = micrograph.pixel_size_nm
     if pixel_size is None:
         pixel_size = settings.pixel_size_nm
     pattern = find_sites(
-        micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=str(path)
+        micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=source
     )
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
     amounts = pattern_amounts(pattern, diagrams)
-    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path),
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=source,
                            amounts=amounts.values)
     return ImageMeasurement(micrograph, pattern, record, amounts)
 

@@ -159,6 +159,7 @@ def train_from_labels(
             alpha=alpha,
         )
     model.settings["features"] = dataclasses.asdict(settings)
+    model.settings["training_images"] = training_image_sizes(records)
     if model_dir is None:
         sheet = labels.source if labels.source.is_dir() else labels.source.parent
         model_dir = Path("models") / f"{sheet.name}-{model.feature_set_name}-{model.classifier}"
@@ -173,6 +174,19 @@ def train_from_labels(
 
         write_training_figures(model, directory, records, y, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
+
+
+def training_image_sizes(records) -> dict:
+    """Median site count and spacing of the training images, for the model card.
+
+    A map of a large micrograph cuts it into tiles holding as many sites as a training image
+    (:func:`topoclass.mapping.tile_side`), so that each tile is measured at the scale the
+    model learnt.
+    """
+    n_sites = [float(r.diagrams.n_sites or len(r.diagrams.h0) + 1) for r in records]
+    spacing = [float(r.diagrams.spacing) for r in records]
+    return {"median_n_sites": float(np.median(n_sites)) if n_sites else None,
+            "median_spacing_px": float(np.median(spacing)) if spacing else None}
 
 
 def validate_from_labels(
