@@ -93,6 +93,15 @@ def test_relative_to_the_sheet_not_the_working_directory(tmp_path, scans, monkey
     assert read_labels(path).images[0] == scans[0].resolve()
 
 
+def test_sheet_entry_is_relative_with_slashes_or_absolute_outside(tmp_path):
+    from topoclass.labels import sheet_entry
+
+    base = tmp_path / "training"
+    assert sheet_entry(base / "images" / "m0.tif", base) == "images/m0.tif"
+    outside = tmp_path / "other" / "m1.tif"
+    assert sheet_entry(outside, base) == outside.as_posix()
+
+
 def test_semicolon_separated_sheet(tmp_path, scans):
     # Spreadsheet programs in comma-decimal locales write ";" (common practice)
     labels = read_labels(_sheet(tmp_path, "image;label\nscans/m0.tif;a\nscans/m1.tif;b\n"))

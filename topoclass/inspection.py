@@ -67,6 +67,9 @@ def summarise(measurement: ImageMeasurement) -> dict:
         "spacing_nm": pattern.spacing_nm,
         "pixel_size_nm": pattern.pixel_size_nm,
         "polarity": pattern.polarity,
+        "preferred_spacing": pattern.preferred_spacing,
+        "analysed_region": list(pattern.frame),
+        "left_out": measurement.region.left_out() if measurement.region is not None else "",
     }
     merged = {**bars, **record.order}
     for key in SUMMARY_MEASURES:

@@ -151,11 +151,24 @@ def write_labels(
         writer = csv.writer(fh, lineterminator="\n")
         writer.writerow(header)
         for i, (image, label) in enumerate(zip(images, labels, strict=True)):
-            row = [_relative_to(Path(image), base), str(label)]
+            row = [sheet_entry(Path(image), base), str(label)]
             if groups is not None:
                 row.append(str(groups[i]))
             writer.writerow(row)
     return path
+
+
+def sheet_entry(image: str | Path, base: str | Path) -> str:
+    """How a label sheet in folder ``base`` names ``image``: relative to it, with ``/``.
+
+    An image outside ``base`` keeps its absolute path, so the entry never depends on the
+    working directory.
+    """
+    absolute = Path(os.path.abspath(image))
+    try:
+        return absolute.relative_to(base).as_posix()
+    except ValueError:
+        return absolute.as_posix()
 
 
 # --------------------------------------------------------------------------- CSV
@@ -391,14 +404,6 @@ def _is_dir(path: Path) -> bool:
         return path.is_dir()
     except (OSError, ValueError):
         return False
-
-
-def _relative_to(image: Path, base: Path) -> str:
-    absolute = Path(os.path.abspath(image))
-    try:
-        return absolute.relative_to(base).as_posix()
-    except ValueError:
-        return absolute.as_posix()
 
 
 def _fail(source: Path, problems: list[str]) -> NoReturn:

@@ -19,6 +19,7 @@ beside it, ``resume=True`` keeps the finished tiles of a killed run.
 from __future__ import annotations
 
 import csv
+import dataclasses
 import io
 import json
 import math
@@ -250,6 +251,9 @@ def map_image(
     classes = [str(c) for c in model.classes]
     columns = tile_columns(classes)
     settings = settings or FeatureSettings.from_model(model)
+    # A tile lies inside the analysed region already: no region of its own, no data-bar search
+    # (a tile edge is not an instrument's frame).
+    settings = dataclasses.replace(settings, region=None, auto_region=False)
     if alpha is not None:
         from topoclass.model.conformal import check_alpha
 

@@ -274,7 +274,8 @@ def make_sites(
 
 
 def make_micrograph(
-    kind: str, *, size: int = 384, seed: int, sample: dict | None = None
+    kind: str, *, size: int = 384, seed: int, sample: dict | None = None,
+    amounts: dict | None = None,
 ) -> tuple[np.ndarray, dict]:
     """One invented top-view micrograph of a porous anodic-alumina membrane, with ground truth.
 
@@ -290,6 +291,10 @@ def make_micrograph(
         Parameters shared by the images of one simulated membrane sample (magnification range,
         pore radius, instrument settings, amount of disorder), as made by :func:`draw_sample`.
         Drawn from ``seed`` when not given.
+    amounts : dict, optional
+        Amounts of disorder of this image, replacing those drawn around the sample's values
+        (for harder sets): ``jitter``, ``vacancy_fraction``, ``merge_fraction``, ``n_grains``,
+        ``angles_deg`` (one lattice angle per grain), ``min_distance``, ``relax_steps``.
 
     Returns
     -------
@@ -314,7 +319,7 @@ def make_micrograph(
 
     lo, hi = sample["spacing_range_px"]
     spacing = float(rng.uniform(lo, hi))
-    params = _image_amounts(kind, sample, rng)
+    params = {**_image_amounts(kind, sample, rng), **(amounts or {})}
     layout = _layout(kind, shape, spacing, rng=rng, params=params)
 
     # Pore radii: one mean per sample, a per-pore spread, and never wider than the wall allows

@@ -16,8 +16,8 @@ CALIBRATION_METHODS = ("auto", "sigmoid", "temperature", "isotonic")
 # Caruana 2005, "Predicting good probabilities with supervised learning"; the scikit-learn user
 # guide gives ~1000 samples as the rough limit). For small multi-class sets, one-vs-rest sigmoid
 # calibration with renormalisation flattened the probabilities in our measurement
-# (benchmarks/calibration_choice.md: ECE 0.15 vs 0.05 for temperature scaling, 30 per class),
-# while temperature scaling (one parameter, keeps the ranking; Guo et al. 2017) did not.
+# (benchmarks/calibration_choice.md, written by benchmarks/bench_calibration.py), while
+# temperature scaling (one parameter, keeps the ranking; Guo et al. 2017) did not.
 ISOTONIC_MIN_SAMPLES = 1000
 
 
