@@ -93,6 +93,9 @@ def inspect(
                                    help="Refuse larger images (decompression-bomb guard)."),
     region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
     no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    model_dir: Path | None = typer.Option(
+        None, "--model", help="Also list the three training images of this model nearest to "
+        "the image (measured with the model's own settings)."),
 ) -> None:
     """Find the lattice sites of one micrograph and report its order measures."""
     from topoclass.features import FeatureSettings
@@ -100,7 +103,10 @@ def inspect(
 
     settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels,
                                **_region_options(region, no_auto_region))
-    summary = inspect_image(image, out=out, settings=settings)
+    trained = None
+    if model_dir is not None:
+        settings, trained = _model_settings(model_dir, max_pixels)
+    summary = inspect_image(image, out=out, settings=settings, model=trained)
     if as_json:
         typer.echo(json.dumps(summary, sort_keys=False))
         return
@@ -613,7 +619,8 @@ def _human_summary(summary: dict) -> str:
     lines.append(f"  spacing          {spacing}")
     lines.append(f"  polarity         {summary['polarity']}")
     lines.append("  (persistence values below are in units of the spacing)")
-    skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
+    skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs",
+            "nearest_labelled"}
     for key, value in summary.items():
         if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
@@ -622,9 +629,24 @@ def _human_summary(summary: dict) -> str:
         if err is not None:
             text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
+    for rank, n in enumerate(summary.get("nearest_labelled", []), start=1):
+        lines.append(f"  nearest labelled {rank}: {n['label']} (sliced Wasserstein H1 "
+                     f"{n['distance']:.3g}) {n['image']}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+def _model_settings(model_dir: Path, max_pixels: int):
+    """A saved model and the feature settings it was trained with (``max_pixels`` replaced)."""
+    import dataclasses
+
+    from topoclass.features import FeatureSettings
+    from topoclass.model import load_model
+
+    trained = load_model(model_dir)
+    settings = dataclasses.replace(FeatureSettings.from_model(trained), max_pixels=max_pixels)
+    return settings, trained
 
 
 def _region_options(region: str | None, no_auto_region: bool) -> dict:

@@ -32,6 +32,7 @@ from topoclass.model import (
     validate_model,
 )
 from topoclass.model.conformal import check_alpha
+from topoclass.model.neighbours import labelled_diagrams
 from topoclass.vectorize import FEATURE_SETS, AcquisitionContext, make_features
 
 #: Feature sets compared by ``select=True``, each with the chosen classifier.
@@ -188,6 +189,7 @@ def train_from_labels(
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
         _check_after_failures(labels, y, groups, cv, failures)
+    originals, original_labels = list(records), y  # the labelled images, without zoomed copies
     augmentation = None
     if zoom_range is not None:
         from topoclass.augment import zoom_factors
@@ -244,6 +246,7 @@ def train_from_labels(
         "label_sheet_sha256": labels.sheet_hash,
         "failed_images": [r.error for r in failures],
     }
+    model.neighbours = labelled_diagrams(originals, original_labels, progress=progress)
     directory = save_model(model, model_dir, extra_card=extra)
     if figures:
         from topoclass.report import write_training_figures

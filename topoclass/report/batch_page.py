@@ -131,7 +131,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
 
     work = [(n, row, _image_path(row["image"], base), n < thumbnails, id(row) in detail_ids)
             for n, row in enumerate(rows) if n < thumbnails or id(row) in detail_ids]
-    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION)
+    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION,
+                          neighbours=getattr(model, "neighbours", None))
     thumbs: dict[int, str] = {}
     links: dict[int, str] = {}
     for n, thumb, link in _run(assets, work, jobs, progress):
@@ -250,9 +251,11 @@ def _run(assets, work: list, jobs: int, progress: bool):
 class _ImageAssets:
     """Thumbnail and detail view of one image (picklable, for the worker pool)."""
 
-    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution):
+    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution, *,
+                 neighbours=None):
         self.files, self.page_name, self.settings = files, page_name, settings
         self.cache_dir, self.classes, self.caution = cache_dir, classes, caution
+        self.neighbours = neighbours  # the model's labelled training diagrams, if it keeps them
 
     def __call__(self, n: int, row: dict, path: Path, thumb: bool, detail: bool
                  ) -> tuple[int, str, str]:
@@ -301,11 +304,30 @@ class _ImageAssets:
             f"<table class='small'><tr><th>class</th><th>probability</th></tr>{probs}</table>"
             f"<p class='caution'>{html.escape(self.caution)}</p>"
             f"{pictures}"
+            f"{_nearest_html(self.neighbours, diagrams.h1)}"
             f"<p><a href='../../{html.escape(self.page_name)}'>back to the report</a></p>"
         )
         title = f"topoclass — {Path(row['image']).name}"
         (folder / "index.html").write_text(html_page(title, body), encoding="utf-8")
         return f"{self.files.name}/{folder.name}/index.html"
+
+
+def _nearest_html(neighbours, h1) -> str:
+    """The three labelled training images nearest to this one, with thumbnails."""
+    if neighbours is None or len(neighbours) == 0:
+        return ""
+    cells = []
+    for n in neighbours.nearest(h1, k=3):
+        thumb = _thumbnail(neighbours.thumbnails[n["index"]] / 255.0)
+        cells.append(
+            f"<figure class='nearest'><img src='{thumb}' alt='training image "
+            f"{html.escape(Path(n['image']).name)}'><figcaption><b>{html.escape(n['label'])}"
+            f"</b> — distance {n['distance']:.3g}<br>{html.escape(Path(n['image']).name)}"
+            "</figcaption></figure>")
+    return ("<h2>Nearest labelled images</h2><p>The training images whose H1 persistence "
+            "diagrams are closest to this one (sliced Wasserstein distance, spacing units), "
+            "with their labels: a way to see what the score is built on, not a second "
+            "score.</p>" + "".join(cells))
 
 
 def _thumbnail(image: np.ndarray) -> str:
