@@ -436,7 +436,6 @@ def suggest(
             typer.echo(str(path))
 
 
-
 @app.command()
 def trend(
     scores_csv: list[Path] | None = typer.Argument(None, metavar="[SCORES_CSV]...",
@@ -574,6 +573,43 @@ def _scores_from_store(store, page: Path, batch, since, model_hash) -> Path:
                              "lists what it holds")
     typer.echo(f"{n} rows from {opened.name} written to {target}")
     return target
+
+
+@app.command("map")
+def map_command(
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR",
+                            help="Model folder written by `topoclass train`."),
+    image: Path = typer.Argument(..., metavar="IMAGE",
+                            help="Large micrograph (TIFF read in pieces; PNG/JPEG whole)."),
+    out: Path = typer.Option(..., "--out", help="Folder for tiles.csv, totals.csv, map.png "
+                             "and map.html."),
+    tile: int | None = typer.Option(None, "--tile", min=32, help="Tile side in pixels "
+                                    "(default: as many sites as a training image)."),
+    overlap: float = typer.Option(3.0, "--overlap", min=0.0, help="Overlap of neighbouring "
+                                  "tiles, in lattice spacings."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished tiles; map the rest."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing map."),
+    memory_limit: float = typer.Option(1500, "--memory-limit", min=1, help="MB a file that "
+                                       "cannot be read in pieces may take to read whole."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
+) -> None:
+    """Map where each class sits on a large micrograph, tile by tile."""
+    from topoclass.mapping import map_image, map_summary_text
+    from topoclass.model import load_model
+    from topoclass.report.map_view import write_map_views
+
+    trained = load_model(model_dir)
+    summary = map_image(trained, image, out, tile=tile, overlap=overlap, jobs=jobs,
+                        resume=resume, overwrite=overwrite, memory_limit_mb=memory_limit,
+                        progress=True, alpha=alpha)
+    png, page = write_map_views(out, image, memory_limit_mb=memory_limit)
+    typer.echo(map_summary_text(summary))
+    typer.echo(f"map: {png}\npage: {page}")
+    if summary.scored == 0 and summary.skipped == 0:
+        raise TopoclassError(f"{out / 'tiles.csv'}: none of the {len(summary.plan)} tiles could "
+                             "be scored; see the message column")
 
 
 def _human_summary(summary: dict) -> str:

@@ -227,6 +227,7 @@ def train_from_labels(
             alpha=alpha,
         )
     model.settings["features"] = dataclasses.asdict(settings)
+    model.settings["training_images"] = training_image_sizes(records)
     model.settings["augmentation"] = augmentation
     if model.range_check is not None:
         names = list(model.range_check.names_)
@@ -252,6 +253,19 @@ def train_from_labels(
 
         write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
+
+
+def training_image_sizes(records) -> dict:
+    """Median site count and spacing of the training images, for the model card.
+
+    A map of a large micrograph cuts it into tiles holding as many sites as a training image
+    (:func:`topoclass.mapping.tile_side`), so that each tile is measured at the scale the
+    model learnt.
+    """
+    n_sites = [float(r.diagrams.n_sites or len(r.diagrams.h0) + 1) for r in records]
+    spacing = [float(r.diagrams.spacing) for r in records]
+    return {"median_n_sites": float(np.median(n_sites)) if n_sites else None,
+            "median_spacing_px": float(np.median(spacing)) if spacing else None}
 
 
 def validate_from_labels(
