@@ -262,7 +262,7 @@ def score(
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
     recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
-                                              len(paths), note)
+                                              len(paths), note, alpha)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True,
                            recorder=recorder, alpha=alpha)
@@ -285,7 +285,7 @@ def score(
         raise typer.Exit(1)
 
 
-def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
+def _batch_recorder(store, model_dir, trained, settings, out, n_images, note, alpha):
     """Open the store and start the batch; a store that cannot be used does not stop scoring."""
     if store is None:
         return None, None
@@ -301,7 +301,10 @@ def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
         recorder = opened.start_batch(
             model_sha256=model_sha256(model_dir), model_path=str(Path(model_dir).absolute()),
             classes=[str(c) for c in trained.classes], settings=settings,
-            output_csv=str(Path(out).absolute()), n_images=n_images, note=note)
+            output_csv=str(Path(out).absolute()), n_images=n_images, note=note,
+            # The verdicts' error rate: the one asked for, else the model's own band's.
+            review_alpha=alpha if alpha is not None
+            else getattr(getattr(trained, "review_band", None), "alpha_", None))
     except StoreError as exc:
         opened.close()
         typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)

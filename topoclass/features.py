@@ -25,6 +25,7 @@ import numpy as np
 from topoclass import __version__
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.amounts import PatternAmounts, pattern_amounts
 from topoclass.augment import zoom_image
 from topoclass.errors import TopoclassError
@@ -291,8 +292,10 @@ class _Worker:
     def __init__(self, settings: FeatureSettings, cache: _RecordCache | None):
         self.settings = settings
         self.cache = cache
+        self.owner = pool_owner()
 
     def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         try:
             sha = file_sha256(path)
         except OSError as exc:

@@ -373,9 +373,24 @@ def _check_classes(labels, groups, n_folds, partial: bool = False) -> list[str]:
                 n, unit = counts[label], "image"
             if n < n_folds:
                 problems.append(f"class '{label}' has {n} {unit}{'s' if n != 1 else ''}, fewer "
-                                f"than the {n_folds} cross-validation folds, add {unit}s to "
-                                "it or use fewer folds")
+                                f"than the {n_folds} cross-validation folds; "
+                                + _more_folds_advice(label, n, n_folds, unit))
     return problems
+
+
+def _more_folds_advice(label: str, n: int, n_folds: int, unit: str) -> str:
+    """What to do when a class has fewer images (or groups) than folds."""
+    more = n_folds - n
+    if unit == "group":
+        # Every fold must hold out one whole sample of each class: more images of the same
+        # samples do not help, images of other samples do.
+        add = (f"label images of {more} more sample{'s' if more != 1 else ''} (groups) of "
+               f"'{label}'")
+    else:
+        add = f"label {more} more image{'s' if more != 1 else ''} of '{label}'"
+    if n >= 2:
+        return f"{add}, or use --cv {n}"
+    return add + " (cross-validation needs at least 2 per class, so fewer folds cannot help)"
 
 
 def _line_of(problem: str) -> int:
