@@ -162,11 +162,12 @@ def train_from_labels(
     alpha : float
         Error rate of the review band (:class:`topoclass.model.ReviewBand`).
     zoom_range : (lo, hi), optional
-        Also train on ``zoom_copies`` rescaled copies of every image at zoom factors spread
-        over this range (:mod:`topoclass.augment`), so the model covers those spacings in
-        pixels; the card records the range and the spacings reached.
+        Also train on rescaled copies of every image at ``zoom_copies`` zoom factors spread
+        over this range (:func:`topoclass.augment.zoom_factors`; a factor of 1 is the original
+        and adds no copy), so the model covers those spacings in pixels; the card records the
+        range and the spacings reached.
     zoom_copies : int
-        Copies per image with ``zoom_range``.
+        Zoom factors with ``zoom_range``.
     overwrite : bool
         Replace a model already in ``model_dir``: once the new model is trained, every file
         of the old one (its validation report too) is removed. Without it an existing model
