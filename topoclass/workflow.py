@@ -60,11 +60,12 @@ def labelled_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray | None, list[RecordResult]]:
     """Pattern records of a label set's images; failed images are left out and returned apart."""
     results = measure_patterns(
         labels.images, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-        description="features",
+        description="features", engine=engine,
     )
     keep = [i for i, r in enumerate(results) if r.ok]
     failures = [r for r in results if not r.ok]
@@ -82,6 +83,7 @@ def zoomed_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray, int]:
     """Records of rescaled copies of a label set's images (:mod:`topoclass.augment`).
 
@@ -95,6 +97,7 @@ def zoomed_records(
     results = measure_patterns(
         paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
         description="zoomed copies", zooms=[f for _ in labels.images for f in factors],
+        engine=engine,
     )
     owner = [i for i in range(len(labels.images)) for _ in factors]
     keep = [k for k, r in enumerate(results) if r.ok]
@@ -123,6 +126,7 @@ def train_from_labels(
     alpha: float = DEFAULT_ALPHA,
     zoom_range: tuple[float, float] | None = None,
     zoom_copies: int = 3,
+    engine=None,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -161,6 +165,8 @@ def train_from_labels(
         pixels; the card records the range and the spacings reached.
     zoom_copies : int
         Copies per image with ``zoom_range``.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure the images on a Dask cluster (``jobs`` is then ignored); the model is the same.
     """
     check_alpha(alpha)
     if feature_set not in FEATURE_SETS:
@@ -172,7 +178,7 @@ def train_from_labels(
     settings = settings or FeatureSettings()
     labels = read_labels(labels_source, n_folds=cv)
     records, y, groups, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
@@ -183,7 +189,8 @@ def train_from_labels(
 
         factors = zoom_factors(zoom_range, zoom_copies)
         extra, y_extra, g_extra, n_lost = zoomed_records(
-            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress
+            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress,
+            engine=engine,
         )
         if groups is None:  # the image is the group: its copies must not cross a split
             ok = {str(p) for p in labels.images} - {str(r.path) for r in failures}
@@ -246,18 +253,20 @@ def validate_from_labels(
     cache_dir: str | Path | None = None,
     progress: bool = False,
     overrides: dict | None = None,
+    engine=None,
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
     Writes ``validation.md`` and the validation figures (confusion matrix, reliability, per
     class) into ``out`` (default: the model folder) and returns the metrics. ``overrides``
-    replaces fields of the model's :class:`FeatureSettings` (for example the region rule).
+    replaces fields of the model's :class:`FeatureSettings` (for example the region rule);
+    ``engine`` measures the images on a Dask cluster (:mod:`topoclass.cluster`).
     """
     model = load_model(model_dir)
     labels = read_labels(labels_source)
     settings = dataclasses.replace(FeatureSettings.from_model(model), **(overrides or {}))
     records, y, _, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if not records:
         raise LabelSheetError(
