@@ -64,6 +64,14 @@ def test_overlay_colours_each_site_by_its_delaunay_coordination(vacancy, tmp_pat
     assert np.mean(np.ptp(grey, axis=2) > 30) > 0.05
 
 
+def test_coordination_class_names_the_overlay_colour_of_each_count():
+    # A site with 6 Delaunay neighbours is the ideal of a triangular lattice; 5 and 7 are the
+    # usual disclination pair and 4 or fewer, 8 or more are lumped (common practice).
+    keys = report.coordination_class(np.array([2, 4, 5, 6, 7, 8, 11]))
+    assert keys.tolist() == ["≤4", "≤4", "5", "6", "7", "≥8", "≥8"]
+    assert set(keys) <= set(report.COORDINATION_COLOURS)
+
+
 def test_overlay_draws_border_sites_hollow(vacancy, tmp_path):
     image, _, _, pattern = vacancy
     report.save_figure(report.plot_sites(image, pattern), tmp_path / "overlay.png")

@@ -29,3 +29,7 @@ class ModelFileError(TopoclassError):
 
 class ClusterError(TopoclassError):
     """A Dask scheduler cannot be reached or was lost mid-run; the message says what to do."""
+
+
+class StoreError(TopoclassError):
+    """A results store cannot be reached, opened or written; the message names it (and host)."""

@@ -80,7 +80,7 @@ def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
     size = _marker_area(pattern.spacing * scale, 0.42)
     handles = _show_region(ax, pattern)
     for label, colour in COORDINATION_COLOURS.items():
-        members = _coordination_class(coord) == label
+        members = coordination_class(coord) == label
         inner, outer = members & ~pattern.border, members & pattern.border
         if inner.any():
             ax.scatter(pattern.xy[inner, 0], pattern.xy[inner, 1], s=size, c=colour,
@@ -297,6 +297,13 @@ def site_coordination(pattern: SitePattern) -> np.ndarray:
     return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
 
 
+def coordination_class(coord: np.ndarray) -> np.ndarray:
+    """The key of :data:`COORDINATION_COLOURS` for each Delaunay coordination (``≤4``, ``5``,
+    ``6``, ``7``, ``≥8``)."""
+    coord = np.asarray(coord)
+    return np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
+
+
 def image_to_figure_pixels(shape: tuple[int, int]) -> tuple[float, int]:
     """Scale factor and legend-strip height (pixels) of the image pictures.
 
@@ -508,11 +515,6 @@ def _circle(centre, radius, colour, lw):
     from matplotlib.patches import Circle
 
     return Circle(centre, radius, fill=False, edgecolor=colour, lw=lw)
-
-
-def _coordination_class(coord: np.ndarray) -> np.ndarray:
-    labels = np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
-    return labels
 
 
 def save_figure(fig: Figure, path: Path, *, svg: bool = False) -> None:
