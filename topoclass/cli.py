@@ -21,8 +21,9 @@ _REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of t
 _NO_AUTO_REGION_HELP = "Do not look for an instrument data bar to leave out."
 
 
-_CLUSTER_HELP = ("Measure the images on a Dask cluster: tcp://HOST:PORT of a running "
-                 "scheduler, or local:N to start N worker processes here (instead of --jobs).")
+_CLUSTER_HELP = ("Measure the images on a Dask cluster, whose workers take the place of "
+                 "parallel jobs: tcp://HOST:PORT of a running scheduler, or local:N to start "
+                 "N worker processes on this machine.")
 
 _FEATURE_HELP = "two-bar, order, topology or all"
 _ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
