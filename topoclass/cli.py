@@ -125,11 +125,15 @@ def synth(
     per_class: int = typer.Option(8, "--per-class", min=1, help="Images per class."),
     size: int = typer.Option(384, "--size", min=64, help="Image side in pixels."),
     seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same images."),
+    data_bars: float = typer.Option(0.0, "--data-bars", min=0.0, max=1.0,
+                                    help="Fraction of images exported with a data bar."),
+    rims: bool = typer.Option(False, "--rims", help="Draw pores with bright rims."),
 ) -> None:
     """Make synthetic anodic-alumina micrographs with ground truth (invented demo data)."""
     from topoclass.synth import write_dataset
 
-    labels = write_dataset(out_dir, per_class=per_class, size=size, seed=seed, progress=True)
+    labels = write_dataset(out_dir, per_class=per_class, size=size, seed=seed, progress=True,
+                           data_bars=data_bars, rims=rims)
     typer.echo(f"wrote {labels}")
 
 
@@ -157,7 +161,8 @@ def train(
         None, "--zoom-range", help="Also train on rescaled copies of every image at zoom "
         "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
     zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
-                                    help="Rescaled copies per image with --zoom-range."),
+                                    help="Zoom factors spread over --zoom-range (a factor "
+                                    "of 1 is the original and adds no copy)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace the model already in "
                                    "--model (all its files, the validation report too)."),
     cluster: str | None = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
