@@ -11,7 +11,8 @@ shared libraries count once per process: an upper bound. ``slope`` is the least-
 of log(time) against log(megapixels); 1 means time per megapixel stays constant.
 
 Accuracy: an invented mosaic (pore spacing 13 px) whose left part is ordered, top right grains
-and bottom right disordered, with borders at x = 0.52 and y = 0.47 of the side, so not on tile
+(pasted from 320-px grain fields, so grains stay the size of the training images') and bottom
+right disordered, with borders at x = 0.52 and y = 0.47 of the side, so not on tile
 seams. A tile lies wholly inside a region when its whole rectangle does; it carries the region's
 class when its verdict (class, review or unfamiliar) is that class; ``predicted`` (the top
 class whatever the verdict) is reported beside it.
@@ -140,7 +141,15 @@ def measure_mosaic(workdir: Path, model_dir: Path, side: int = 2400) -> dict:
     for k, kind in enumerate(("ordered", "grains", "disordered")):
         sample = draw_sample(kind, seed=500 + k)
         sample["spacing_range_px"] = [13.0, 13.0]
-        fields[kind] = make_micrograph(kind, size=side, seed=600 + k, sample=sample)[0]
+        if kind != "grains":
+            fields[kind] = make_micrograph(kind, size=side, seed=600 + k, sample=sample)[0]
+            continue
+        # One field this large would hold a few huge grains, and a tile inside one of them is
+        # an ordered patch; fields of 320 px keep grains the size of the training images'.
+        n = -(-side // 320)
+        pieces = [[make_micrograph(kind, size=320, seed=700 + n * i + j, sample=sample)[0]
+                   for j in range(n)] for i in range(n)]
+        fields[kind] = np.block(pieces)[:side, :side]
     bx, by = int(0.52 * side), int(0.47 * side)
     mosaic = fields["ordered"].copy()
     mosaic[:by, bx:] = fields["grains"][:by, bx:]
