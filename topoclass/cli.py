@@ -288,7 +288,8 @@ def score(
     typer.echo(summary_text(summary))
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
-                                  cache_dir=cache, overwrite=True, progress=True)
+                                  cache_dir=cache, overwrite=True, progress=True,
+                                  settings=settings)
         typer.echo(f"report: {page}")
     typer.echo(f"failed: {summary.total_failed} of {summary.given}")
     if summary.total_failed == summary.given:
