@@ -25,6 +25,7 @@ import numpy as np
 from topoclass import __version__
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.amounts import PatternAmounts, pattern_amounts
 from topoclass.augment import zoom_image
 from topoclass.errors import TopoclassError
@@ -146,11 +147,23 @@ def measure_image(
     """
     settings = settings or FeatureSettings()
     micrograph = read_micrograph(path, max_pixels=settings.max_pixels)
+    return measure_micrograph(micrograph, settings, zoom=zoom)
+
+
+def measure_micrograph(micrograph: Micrograph, settings: FeatureSettings | None = None, *,
+                       zoom: float = 1.0) -> ImageMeasurement:
+    """Sites, persistence, order measures and amounts of an image already read.
+
+    The part of :func:`measure_image` after reading, so that a piece of a large micrograph
+    (:mod:`topoclass.mapping`) is measured exactly as a whole file is.
+    """
+    settings = settings or FeatureSettings()
+    source = micrograph.source
     pixel_size = micrograph.pixel_size_nm
     if pixel_size is None:
         pixel_size = settings.pixel_size_nm
     region = analysed_region(micrograph.image, settings.region, auto=settings.auto_region,
-                             source=str(path))
+                             source=source)
     image, box = micrograph.image, region.box
     if zoom != 1.0:
         x0, y0, x1, y1 = box
@@ -159,14 +172,14 @@ def measure_image(
         pixel_size = None if pixel_size is None else pixel_size / zoom
         box = None
     pattern = find_sites(image, polarity=settings.polarity, pixel_size_nm=pixel_size,
-                         source=str(path), region=box)
+                         source=source, region=box)
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
     amounts = pattern_amounts(pattern, diagrams)
     remarks = [f"left out: {region.left_out()}"] if not region.whole else []
     if not pattern.preferred_spacing:
         remarks.append("no preferred spacing (no ring in the power spectrum): the scale comes "
                        "from the spots, the spacing is that of a lattice of equal density")
-    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path),
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=source,
                            amounts=amounts.values, region=pattern.frame,
                            remarks=tuple(remarks))
     return ImageMeasurement(micrograph, pattern, record, amounts, region)
@@ -188,12 +201,13 @@ def measure_patterns(
     progress: bool = False,
     description: str = "features",
     zooms: Sequence[float] | None = None,
+    engine=None,
 ) -> list[RecordResult]:
     """Pattern records of many images, in input order; see :func:`iter_records`."""
     return list(
         iter_records(
             paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-            description=description, zooms=zooms,
+            description=description, zooms=zooms, engine=engine,
         )
     )
 
@@ -224,6 +238,7 @@ def iter_records(
     progress: bool = False,
     description: str = "features",
     zooms: Sequence[float] | None = None,
+    engine=None,
 ) -> Iterator[RecordResult]:
     """Yield a :class:`RecordResult` per path, in input order, as images finish.
 
@@ -244,6 +259,11 @@ def iter_records(
     zooms : sequence of float, optional
         One zoom factor per path: measure a rescaled copy of the image instead
         (:func:`measure_image`); cached apart from the original.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Run each image as a task on a Dask cluster instead (``jobs`` is then ignored); results
+        still come back in input order, to this process. The cache folder is used by the
+        workers that can write it and skipped by those that cannot; a failed image's message
+        names the worker.
     """
     settings = settings or FeatureSettings()
     paths = [Path(p) for p in paths]
@@ -252,8 +272,11 @@ def iter_records(
         raise ValueError(f"{len(zooms)} zoom factors for {len(paths)} paths")
     cache = _cache_for(cache_dir, settings)
     work = _Worker(settings, cache)
-    if jobs == 1 or len(paths) <= 1:
-        results: Iterator[RecordResult] = (work(p, z) for p, z in zip(paths, zooms, strict=True))
+    if engine is not None:
+        results: Iterator[RecordResult] = engine.imap(
+            _OnWorker(work), zip(paths, zooms, strict=True), lost=_given_up)
+    elif jobs == 1 or len(paths) <= 1:
+        results = (work(p, z) for p, z in zip(paths, zooms, strict=True))
     else:
         from joblib import Parallel, delayed
 
@@ -279,8 +302,10 @@ class _Worker:
     def __init__(self, settings: FeatureSettings, cache: _RecordCache | None):
         self.settings = settings
         self.cache = cache
+        self.owner = pool_owner()
 
     def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         try:
             sha = file_sha256(path)
         except OSError as exc:
@@ -315,6 +340,36 @@ def _limited(work: Callable, path: Path, zoom: float = 1.0) -> RecordResult:
 
     with threadpool_limits(limits=1):
         return work(path, zoom)
+
+
+class _OnWorker:
+    """One image as a cluster task: one BLAS thread, and a failure that names the worker."""
+
+    def __init__(self, work: _Worker):
+        # A worker's working folder is not the client's: relative paths (images, cache) are
+        # taken as the client meant them; results carry the path as given, as with --jobs.
+        self.cwd = Path.cwd()
+        if work.cache is not None:
+            work.cache.folder = work.cache.folder.absolute()
+        self.work = work
+
+    def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        from topoclass.cluster import worker_name
+
+        result = _limited(self.work, self.cwd / path, zoom)
+        if result.ok:
+            return dataclasses.replace(result, path=path,
+                                       record=dataclasses.replace(result.record,
+                                                                  source=str(path)))
+        # A worker sees its own file system: where it failed matters to the operator.
+        where = worker_name()
+        error = f"{result.error} (on cluster worker {where})" if where else result.error
+        return dataclasses.replace(result, path=path, error=error)
+
+
+def _given_up(path: Path, zoom: float, reason: str) -> RecordResult:
+    return RecordResult(path, None, None, f"{path}: {reason}; score it alone, or on a worker "
+                        "with more memory (--resume retries it)")
 
 
 def _cache_for(cache_dir, settings: FeatureSettings) -> _RecordCache | None:

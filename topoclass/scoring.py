@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.amounts import AMOUNT_KEYS
-from topoclass.errors import TopoclassError
+from topoclass.errors import StoreError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
 
@@ -88,6 +88,10 @@ class ScoreSummary:
     unfamiliar: int = 0
     review: int = 0
     per_class: Counter = field(default_factory=Counter)
+    #: The results store the rows also went to (see :mod:`topoclass.store`), if any.
+    store: str | None = None
+    #: Why the store stopped taking rows (the CSV still has every row), if it did.
+    store_error: str | None = None
     #: Error rate of the review band used.
     alpha: float | None = None
 
@@ -135,7 +139,9 @@ def score_images(
     overwrite: bool = False,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    recorder=None,
     alpha: float | None = None,
+    engine=None,
 ) -> ScoreSummary:
     """Score images with a trained model and append one row per image to ``out``.
 
@@ -159,9 +165,17 @@ def score_images(
         Replace an existing ``out``.
     cache_dir, progress
         As in :func:`topoclass.features.iter_records`.
+    recorder : topoclass.store.BatchRecorder, optional
+        Also writes every row to a results store, each chunk committed there before it is
+        written to the CSV. With ``resume``, images the store already holds for this model and
+        settings are not scored again: their stored rows are copied to the CSV. A store that
+        fails stops taking rows (``summary.store_error`` says why); the CSV still gets them.
     alpha : float, optional
         Error rate of the review band behind the ``verdict`` column; the model's own (set at
         training) when omitted.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure the images on a Dask cluster (``jobs`` is then ignored). This process stays the
+        one writer: the rows, their order, the lock and ``resume`` are as with ``jobs``.
     """
     out = Path(out)
     classes = [str(c) for c in model.classes]
@@ -174,7 +188,8 @@ def score_images(
 
         alpha = check_alpha(alpha)
     summary = ScoreSummary(out=out, given=len(paths), alpha=alpha if alpha is not None
-                           else (band.alpha_ if band is not None else None))
+                           else (band.alpha_ if band is not None else None),
+                           store=None if recorder is None else recorder.store.name)
     if out.exists() and not (resume or overwrite):
         raise TopoclassError(
             f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
@@ -199,17 +214,30 @@ def score_images(
                 _drop_rows(out, columns, key)  # the file changed: its old row is stale
             todo.append(p)
         with open(out, "a", newline="", encoding="utf-8") as fh:
+            if resume and recorder is not None:
+                todo = _copy_stored_rows(recorder, todo, fh, columns, summary)
             results = iter_records(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-                description="scoring",
+                description="scoring", engine=engine,
             )
             for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
                 rows = _score_rows(model, classes, chunk, alpha)
+                if recorder is not None and summary.store_error is None:
+                    try:
+                        recorder.add(rows)
+                    except StoreError as exc:
+                        summary.store_error = str(exc)
                 fh.write("".join(_format_row(row, columns) for row in rows))
                 fh.flush()
                 os.fsync(fh.fileno())
                 for row in rows:
                     summary._count(row, earlier=False)
+    if recorder is not None and summary.store_error is None:
+        try:
+            recorder.finish(scored=summary.scored, failed=summary.failed,
+                            skipped=summary.skipped)
+        except StoreError as exc:
+            summary.store_error = str(exc)
     return summary
 
 
@@ -235,6 +263,9 @@ def summary_text(summary: ScoreSummary) -> str:
                  "no class fits, so not counted as any class; check them by eye)")
     lines.append(f"  failed {'':<19} {summary.total_failed} (see the message column)")
     lines.append(f"results: {summary.out}")
+    if summary.store is not None:
+        lines.append(f"store: {summary.store}" if summary.store_error is None else
+                     f"store: NOT complete ({summary.store_error}); every row is in the CSV")
     lines.append("")
     if summary.alpha is not None:
         lines.append(BAND_NOTE.format(alpha=summary.alpha))
@@ -244,6 +275,34 @@ def summary_text(summary: ScoreSummary) -> str:
 
 # --------------------------------------------------------------------------------------------
 # private helpers
+
+
+def _copy_stored_rows(recorder, todo: list[Path], fh, columns: list[str],
+                      summary: ScoreSummary) -> list[Path]:
+    """Write the stored rows of images the store already holds; return the images still to do."""
+    hashes: dict[Path, str] = {}
+    for p in todo:
+        try:
+            hashes[p] = file_sha256(p)
+        except OSError:
+            pass  # unreadable now: scoring it again writes the error row
+    try:
+        stored = recorder.finished(hashes.values())
+    except StoreError as exc:
+        summary.store_error = str(exc)
+        return todo
+    rest = []
+    for p in todo:
+        row = stored.get(hashes.get(p, ""))
+        if row is None:
+            rest.append(p)
+            continue
+        fh.write(_format_row({**row, "image": str(p)}, columns))
+        summary.skipped += 1
+        summary._count(row, earlier=True)
+    fh.flush()
+    os.fsync(fh.fileno())
+    return rest
 
 
 def _chunks(results, size: int, seconds: float):

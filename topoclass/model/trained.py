@@ -15,6 +15,7 @@ from topoclass.errors import TopoclassError
 from topoclass.model.calibration import choose_calibration, fit_calibrated, limit_by_evidence
 from topoclass.model.conformal import DEFAULT_ALPHA, UNFAMILIAR, ReviewBand
 from topoclass.model.evaluation import CVReport, cross_validate_model, metrics_from_probabilities
+from topoclass.model.neighbours import LabelledDiagrams
 from topoclass.model.novelty import MahalanobisNovelty, RangeNovelty
 from topoclass.model.pipeline import DEFAULT_CLASSIFIER, build_pipeline
 
@@ -46,6 +47,9 @@ class TrainedModel:
     review_band : ReviewBand or None
         Conformal prediction sets from the out-of-fold probabilities (None in models written
         before the band existed: their verdict is the top class unless unfamiliar).
+    neighbours : LabelledDiagrams or None
+        H1 diagrams, labels and thumbnails of the training images, to show the labelled images
+        nearest to a scored one (:mod:`topoclass.model.neighbours`); None in older models.
     """
 
     estimator: Any
@@ -60,6 +64,7 @@ class TrainedModel:
     settings: dict
     range_check: RangeNovelty | None = None
     review_band: ReviewBand | None = None
+    neighbours: LabelledDiagrams | None = None
 
     def predict_proba(self, X) -> np.ndarray:
         """Calibrated probability of each class, columns in the order of ``classes``.

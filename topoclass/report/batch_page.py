@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings
 from topoclass.pages import html_page
@@ -50,7 +51,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
                        model=None, details: int = MAX_DETAILS,
                        thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
                        cache_dir: str | Path | None = None, overwrite: bool = False,
-                       trend_charts: bool = True, progress: bool = False) -> Path:
+                       trend_charts: bool = True, progress: bool = False,
+                       settings: FeatureSettings | None = None) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
@@ -92,6 +94,9 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         batch has at least :data:`MIN_TREND_IMAGES` scored images.
     progress : bool
         Show a progress bar while the images are read.
+    settings : FeatureSettings, optional
+        The site-finding settings the scoring used, when they differ from the model's (for
+        example a ``--region`` given to ``score``); default: the model's.
 
     Returns
     -------
@@ -127,11 +132,12 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     review = [r for r in ok if r.get("verdict") == "review"]
     failed = [r for r in rows if r.get("status") != "ok"]
     detail_ids = {id(r) for r in most_doubtful_first(ok, classes)[:max(details, 0)]}
-    settings = FeatureSettings.from_model(model)
+    settings = settings if settings is not None else FeatureSettings.from_model(model)
 
     work = [(n, row, _image_path(row["image"], base), n < thumbnails, id(row) in detail_ids)
             for n, row in enumerate(rows) if n < thumbnails or id(row) in detail_ids]
-    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION)
+    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION,
+                          neighbours=getattr(model, "neighbours", None))
     thumbs: dict[int, str] = {}
     links: dict[int, str] = {}
     for n, thumb, link in _run(assets, work, jobs, progress):
@@ -250,12 +256,16 @@ def _run(assets, work: list, jobs: int, progress: bool):
 class _ImageAssets:
     """Thumbnail and detail view of one image (picklable, for the worker pool)."""
 
-    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution):
+    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution, *,
+                 neighbours=None):
         self.files, self.page_name, self.settings = files, page_name, settings
         self.cache_dir, self.classes, self.caution = cache_dir, classes, caution
+        self.neighbours = neighbours  # the model's labelled training diagrams, if it keeps them
+        self.owner = pool_owner()
 
     def __call__(self, n: int, row: dict, path: Path, thumb: bool, detail: bool
                  ) -> tuple[int, str, str]:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         from topoclass.features import cached_measurement, measure_image
         from topoclass.images import read_micrograph
 
@@ -301,11 +311,30 @@ class _ImageAssets:
             f"<table class='small'><tr><th>class</th><th>probability</th></tr>{probs}</table>"
             f"<p class='caution'>{html.escape(self.caution)}</p>"
             f"{pictures}"
+            f"{_nearest_html(self.neighbours, diagrams.h1)}"
             f"<p><a href='../../{html.escape(self.page_name)}'>back to the report</a></p>"
         )
         title = f"topoclass — {Path(row['image']).name}"
         (folder / "index.html").write_text(html_page(title, body), encoding="utf-8")
         return f"{self.files.name}/{folder.name}/index.html"
+
+
+def _nearest_html(neighbours, h1) -> str:
+    """The three labelled training images nearest to this one, with thumbnails."""
+    if neighbours is None or len(neighbours) == 0:
+        return ""
+    cells = []
+    for n in neighbours.nearest(h1, k=3):
+        thumb = _thumbnail(neighbours.thumbnails[n["index"]] / 255.0)
+        cells.append(
+            f"<figure class='nearest'><img src='{thumb}' alt='training image "
+            f"{html.escape(Path(n['image']).name)}'><figcaption><b>{html.escape(n['label'])}"
+            f"</b> — distance {n['distance']:.3g}<br>{html.escape(Path(n['image']).name)}"
+            "</figcaption></figure>")
+    return ("<h2>Nearest labelled images</h2><p>The training images whose H1 persistence "
+            "diagrams are closest to this one (sliced Wasserstein distance, spacing units), "
+            "with their labels: a way to see what the score is built on, not a second "
+            "score.</p>" + "".join(cells))
 
 
 def _thumbnail(image: np.ndarray) -> str:
