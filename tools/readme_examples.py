@@ -33,7 +33,7 @@ README = ROOT / "README.md"
 COMMANDS = [
     ("train", "topoclass train training/labels.csv --model models/line-A"),
     ("validate", "topoclass validate models/line-A production/labels.csv"),
-    ("score", "topoclass score models/line-A production/images --out line-A/scores.csv --jobs 2"),
+    ("score", "topoclass score models/line-A production/images --out line-A.csv --jobs 2"),
     ("inspect", "topoclass inspect production/images/vacancies_002.png --out inspect"),
 ]
 #: Rows of scores.csv shown in the README: this scored image and the odd files of the batch.
@@ -75,7 +75,7 @@ def main() -> int:
         for name, line in COMMANDS:
             output = run(topoclass + line.split()[1:], folder, env)
             blocks[name] = f"```bash\n{line}\n```\n```text\n{output}\n```"
-        blocks["rows"] = "```csv\n" + _rows(folder / "line-A" / "scores.csv") + "\n```"
+        blocks["rows"] = "```csv\n" + _rows(folder / "line-A.csv") + "\n```"
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     stamp = (f"{dt.datetime.now():%Y-%m-%d}, {cpu_model()}, {os.cpu_count()} logical cores, "
              f"load average {load:.1f}")
