@@ -401,7 +401,8 @@ def demo(
 
 @app.command()
 def label(
-    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    images: list[Path] = typer.Argument(..., metavar="IMAGES",
+                                        help="Images, folders or text files of paths."),
     sheet: Path = typer.Option(..., "--sheet", help="Label sheet (CSV) to fill in; made when "
                                "missing, continued when it exists."),
     classes: str | None = typer.Option(None, "--classes", help="Classes to offer, comma "
@@ -427,7 +428,8 @@ def label(
 
 @app.command()
 def suggest(
-    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    images: list[Path] = typer.Argument(..., metavar="IMAGES",
+                                        help="Images, folders or text files of paths."),
     sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
     count: int = typer.Option(10, "--count", min=1, help="How many images to suggest."),
     as_json: bool = typer.Option(False, "--json", help="Print a JSON list with the predicted "
@@ -520,7 +522,8 @@ app.add_typer(store_app, name="store")
 
 @store_app.command("export")
 def store_export(
-    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    store: str = typer.Argument(..., metavar="STORE",
+                                help="A SQLite store file or a postgresql:// URL."),
     out: Path = typer.Option(..., "--out", help="File to write: .csv or .parquet."),
     since: str | None = typer.Option(None, "--since", help="Rows scored since this date "
                                      "(YYYY-MM-DD, UTC)."),
@@ -539,7 +542,8 @@ def store_export(
 
 @store_app.command("batches")
 def store_batches(
-    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    store: str = typer.Argument(..., metavar="STORE",
+                                help="A SQLite store file or a postgresql:// URL."),
     last: int = typer.Option(20, "--last", min=1, help="Show this many newest batches."),
 ) -> None:
     """List the batches in a store, newest first."""

@@ -407,6 +407,8 @@ def _check_after_failures(labels, y, groups, cv, failures) -> None:
         raise LabelSheetError(
             f"{labels.source}: too few usable images after {len(failures)} failed: "
             + "; ".join(problems)
+            + "; fix or replace the failed images (each message says why) or label more "
+            "images of those classes"
         )
 
 
