@@ -34,7 +34,7 @@ from topoclass.records import PatternRecord
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 4
+_CACHE_LAYOUT = 5
 
 
 @dataclass(frozen=True)
