@@ -83,6 +83,8 @@ GOALS = {
     "featurize_vs_floor": ("<=", 5.0),
     "jobs2_speedup": (">=", 1.7),
     "site_finding_2048_s": ("<=", 1.0),
+    "report_vs_score": ("<=", 0.5),
+    "detail_kb_per_image": ("<=", 150.0),
 }
 
 SCALING_SPACING = 10.0  # px; the rendered images of the scaling run
@@ -538,6 +540,10 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
 
             accuracy = timed("accuracy", lambda: measure_accuracy(
                 **cfg["accuracy"], jobs=2, workdir=tmp / "accuracy"))
+            from bench_report import measure_report
+
+            batch_report = timed("report", lambda: measure_report(
+                tmp / "report", rounds=cfg["jobs_rounds"], progress=log))
             rips = timed("rips", lambda: measure_rips(cfg["rips_sites"],
                                                       repeats=cfg["rips_limited_repeats"]))
 
@@ -549,6 +555,8 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
         "featurize_vs_floor": featurize["ratio"],
         "jobs2_speedup": jobs["speedup_warm"] if jobs["speedup_warm"] else jobs["speedup_cold"],
         "site_finding_2048_s": sites["best_s"],
+        "report_vs_score": batch_report["report_vs_score"],
+        "detail_kb_per_image": batch_report["detail_kb_per_image"],
     }
     for key, value in values.items():
         op, goal = GOALS[key]
@@ -558,6 +566,7 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
     results["accuracy"] = {"goal": "reported, no threshold", "rows": accuracy["rows"]}
     results["details"] = {"rips": rips, "scaling": scaling, "peak_rss": rss,
                           "featurize": featurize, "jobs": jobs, "site_finding": sites,
+                          "report": batch_report,
                           "accuracy": {k: v for k, v in accuracy.items() if k != "rows"}}
     results["sizes"] = _sizes_text(cfg)
     results["seconds"] = seconds
@@ -622,6 +631,11 @@ def table_text(results: dict) -> str:
                          f"{d['jobs']['parallel_capacity']:.2f}",
         "site_finding_2048_s": f"{d['site_finding']['n_sites']} sites, best of "
                                f"{d['site_finding']['repeats']}",
+        "report_vs_score": f"{d['report']['n_images']} images, cold cache: report "
+                           f"{min(d['report']['report_s']):.2f} s / scoring "
+                           f"{min(d['report']['score_s']):.2f} s (bench_report.py)",
+        "detail_kb_per_image": f"{d['report']['detail_views']} detail views, "
+                               f"{d['report']['detail_bytes'] / 1e6:.2f} MB",
     }
     lines = ["| metric | value | goal | pass | measured on |", "| --- | --- | --- | --- | --- |"]
     for key in GOALS:

@@ -15,26 +15,6 @@ from PIL import Image
 REPO = Path(__file__).resolve().parents[1]
 
 
-def _inspect_missing_stage() -> str:
-    # The inspect command imports later pipeline stages that are written in parallel; while
-    # one of them is missing the command cannot start, and these checks would test nothing.
-    try:
-        import topoclass.inspection  # noqa: F401
-    except ModuleNotFoundError as exc:
-        if (exc.name or "").startswith("topoclass."):
-            return f"{exc.name} does not exist yet"
-        raise
-    except ImportError as exc:
-        if (getattr(exc, "name", None) or "").startswith("topoclass."):
-            return f"{exc.name} is not complete yet ({exc})"
-        raise
-    return ""
-
-
-_MISSING = _inspect_missing_stage()
-pytestmark = pytest.mark.skipif(bool(_MISSING), reason=_MISSING)
-
-
 def _write(kind: str, tmp_path: Path) -> Path:
     rng = np.random.default_rng(3)
     if kind == "missing":

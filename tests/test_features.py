@@ -18,13 +18,13 @@ def images(small_dataset):
 
 def _count_extractions(monkeypatch) -> list:
     calls = []
-    real = features.measure_pattern
+    real = features.measure_image
 
     def counting(path, settings=None):
         calls.append(path)
         return real(path, settings)
 
-    monkeypatch.setattr(features, "measure_pattern", counting)
+    monkeypatch.setattr(features, "measure_image", counting)
     return calls
 
 
@@ -90,3 +90,22 @@ def test_measure_pattern_carries_the_source(images):
     record = measure_pattern(images[0])
     assert record.source == str(images[0])
     assert record.diagrams.spacing > 0
+
+
+def test_cache_keeps_the_site_pattern_for_the_report(images, tmp_path, monkeypatch):
+    from topoclass.features import cached_measurement, measure_image
+
+    first = measure_patterns(images[:1], cache_dir=tmp_path)[0]
+    calls = _count_extractions(monkeypatch)
+    hit = cached_measurement(images[0], first.sha256, cache_dir=tmp_path)
+    assert calls == [] and hit is not None
+    pattern, record = hit
+    direct = measure_image(images[0])
+    d = direct.pattern
+    np.testing.assert_array_equal(pattern.xy, d.xy)
+    np.testing.assert_array_equal(pattern.border, d.border)
+    assert (pattern.spacing, pattern.polarity, pattern.shape, pattern.pixel_size_nm) == (
+        d.spacing, d.polarity, d.shape, d.pixel_size_nm)
+    np.testing.assert_array_equal(record.diagrams.h1, direct.record.diagrams.h1)
+    assert cached_measurement(images[0], "0" * 64, cache_dir=tmp_path) is None
+    assert cached_measurement(images[0], first.sha256, cache_dir="") is None

@@ -190,7 +190,12 @@ def test_cv_report_probabilities_are_out_of_fold(data):
     test = report.fold == 0
     manual = build_pipeline(None, "logistic").fit(X[~test], y[~test]).predict_proba(X[test])
     np.testing.assert_allclose(report.oof_proba[test], manual, atol=1e-12)
-    assert report.metrics == metrics_from_probabilities(y, report.oof_proba, report.classes)
+    # The report's scores are those of its out-of-fold probabilities (scikit-learn's metrics).
+    predicted = report.classes[np.argmax(report.oof_proba, axis=1)]
+    assert report.metrics["accuracy"] == pytest.approx(accuracy_score(y, predicted))
+    assert report.metrics["macro_f1"] == pytest.approx(f1_score(y, predicted, average="macro"))
+    assert report.metrics["log_loss"] == pytest.approx(
+        log_loss(y, report.oof_proba, labels=report.classes))
 
 
 def test_refuses_class_with_fewer_groups_than_folds(data):
@@ -300,10 +305,19 @@ def test_validate_model_and_progress(data):
                         classifier="logistic",
                         progress=lambda step, done, total: calls.append((done, total)))
     assert calls[-1][0] == calls[-1][1]
-    metrics = validate_model(model, X_test, y_test)
-    expected = metrics_from_probabilities(y_test, model.predict_proba(X_test), model.classes)
-    assert metrics["macro_f1"] == expected["macro_f1"]
-    assert 0 <= metrics["unfamiliar_fraction"] <= 1
+    # Held-out rows plus 10 rows far outside the training data (every column 50 standard
+    # deviations off): scikit-learn's own metrics are the reference for the scores, and the
+    # unfamiliar fraction must count exactly the far rows.
+    far = np.full((10, X_test.shape[1]), 50.0) * X.std(axis=0) + X.mean(axis=0)
+    X_all = np.vstack([X_test, far])
+    y_all = np.concatenate([y_test, y_test[:10]])
+    metrics = validate_model(model, X_all, y_all)
+    predicted = model.classes[np.argmax(model.predict_proba(X_all), axis=1)]
+    assert metrics["macro_f1"] == pytest.approx(f1_score(y_all, predicted, average="macro"))
+    assert metrics["accuracy"] == pytest.approx(accuracy_score(y_all, predicted))
+    assert metrics["log_loss"] == pytest.approx(
+        log_loss(y_all, model.predict_proba(X_all), labels=model.classes))
+    assert metrics["unfamiliar_fraction"] == pytest.approx(10 / len(X_all))
     with pytest.raises(TopoclassError, match="not classes of this model"):
         validate_model(model, X_test[:3], ["ordered", "grain_boundary", "ordered"])
 

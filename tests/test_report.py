@@ -472,9 +472,53 @@ def test_batch_report_is_self_contained_and_complete(tmp_path):
     assert len(set(details)) == 2 and "detail views for at most 2 images" in text.lower()
     first = out.parent / details[0]
     assert first.parent.name.startswith("00000-")
-    for name in ("overlay.png", "diagram.png", "defects.png", "defects.csv"):
+    for name in ("micrograph.jpg", "defects.csv"):
         assert (first.parent / name).is_file()
-    assert "../report.html" in first.read_text()
+    detail = first.read_text()
+    assert f"../../{out.name}" in detail and (first.parent / f"../../{out.name}").resolve() == out
+    assert detail.count("<svg") >= 4 and "micrograph.jpg" in detail
+
+
+def test_detail_views_go_to_the_most_doubtful_images_first():
+    rows = [{"unfamiliar": "no", "p_a": "0.9", "p_b": "0.1"},
+            {"unfamiliar": "no", "p_a": "0.55", "p_b": "0.45"},
+            {"unfamiliar": "yes", "p_a": "0.99", "p_b": "0.01"},
+            {"unfamiliar": "no", "p_a": "0.3", "p_b": "0.7"}]
+    order = report.most_doubtful_first(rows, ["a", "b"])
+    assert [rows.index(r) for r in order] == [2, 1, 3, 0]
+
+
+def test_detail_view_draws_every_site_and_defect_over_one_small_jpeg(vacancy, tmp_path):
+    import xml.etree.ElementTree as ET
+
+    from topoclass.report.detail_view import write_detail_pictures
+
+    image, removed, spacing, pattern = vacancy
+    diagrams = pattern_persistence(pattern, exclude_border=False)
+    fragment = write_detail_pictures(image, pattern, diagrams, tmp_path)
+    with Image.open(tmp_path / "micrograph.jpg") as im:
+        assert im.format == "JPEG" and im.size == image.shape[::-1]
+    svgs = [ET.fromstring(m) for m in
+            __import__("re").findall(r"<svg.*?</svg>", fragment, flags=__import__("re").S)]
+    ns = "{http://www.w3.org/2000/svg}"
+    sites, defects = svgs[0], svgs[1]
+    # One round-capped dot per interior site, at its coordinates (image pixels), and one
+    # hollow circle per border site.
+    dots = [d for p in sites.iter() if p.tag in ("path", ns + "path") and
+            p.get("stroke") != "black" for d in p.get("d").split("M")[1:]]
+    xy = np.array([[float(v) for v in d[:-2].split()] for d in dots])
+    assert len(xy) == int((~pattern.border).sum())
+    np.testing.assert_allclose(np.sort(xy, axis=0),
+                               np.sort(np.round(pattern.xy[~pattern.border], 1), axis=0),
+                               atol=0.051)
+    rings = [c for c in sites.iter() if c.tag in ("circle", ns + "circle")]
+    assert len(rings) == int(pattern.border.sum())
+    # The defect map: one loop, at the CSV's place, near the removed site.
+    rows = _read_defects(tmp_path / "defects.csv")
+    loops = [c for c in defects.iter() if c.tag in ("circle", ns + "circle")]
+    assert len(loops) == len(rows) == 1
+    centre = np.array([float(loops[0].get("cx")), float(loops[0].get("cy"))])
+    assert np.hypot(*(centre - removed)) < spacing
 
 
 def test_batch_report_of_a_partly_written_file(tmp_path):

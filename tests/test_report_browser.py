@@ -70,7 +70,16 @@ def test_detail_view_opens_with_its_pictures(browser, report_page):
     browser.get(out.resolve().as_uri())
     link = browser.find_elements("css selector", "a[href^='report_files/']")[0]
     browser.get(link.get_attribute("href"))
-    widths = browser.execute_script(
-        "return Array.from(document.images).map(i => i.complete ? i.naturalWidth : 0);")
-    assert len(widths) == 3 and all(w > 300 for w in widths), widths
+    # Two pictures layered over the one micrograph JPEG, and the diagram with two barcodes.
+    boxes = browser.execute_script(
+        "return Array.from(document.querySelectorAll('svg')).map(s => "
+        "s.getBoundingClientRect().width);")
+    assert len(boxes) == 5 and all(w > 100 for w in boxes), boxes
+    jpeg = browser.execute_async_script(
+        "const done = arguments[0]; const im = new Image();"
+        "im.onload = () => done(im.naturalWidth); im.onerror = () => done(-1);"
+        "im.src = document.querySelector('svg.layers image').getAttribute('href');")
+    assert jpeg > 100
     assert severe_messages(browser) == []
+    browser.find_element("link text", "back to the report").click()
+    assert browser.current_url == out.resolve().as_uri()

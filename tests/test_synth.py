@@ -288,3 +288,14 @@ def _circumradius(p: np.ndarray) -> np.ndarray:
     cross = (p[:, 1, 0] - p[:, 0, 0]) * (p[:, 2, 1] - p[:, 0, 1]) - (
         p[:, 1, 1] - p[:, 0, 1]) * (p[:, 2, 0] - p[:, 0, 0])
     return a * b * c / (2.0 * np.abs(cross) + 1e-12)
+
+
+def test_amounts_replace_the_drawn_disorder():
+    # The hard variant of the labelling benchmark: few vacancies, two grains 4 degrees apart.
+    _, truth = make_micrograph("vacancies", size=192, seed=3,
+                               amounts={"vacancy_fraction": 0.005, "merge_fraction": 0.0})
+    assert truth["n_merged"] == 0
+    assert 0 < truth["n_vacancies"] <= 0.01 * truth["n_sites"]
+    _, truth = make_micrograph("grains", size=192, seed=3,
+                               amounts={"n_grains": 2, "angles_deg": [10.0, 14.0]})
+    assert truth["angles_deg"] == [10.0, 14.0] and truth["min_misorientation_deg"] == 4.0

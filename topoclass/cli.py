@@ -185,6 +185,10 @@ def score(
                                           help="Refuse larger images (default 100 megapixels)."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
+                                "at most this many images, the most doubtful first."),
+    no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
+                                   "report` makes the page later)."),
 ) -> None:
     """Score micrographs in batch with a probability for each class."""
     import dataclasses
@@ -207,7 +211,10 @@ def score(
     typer.echo(summary_text(summary))
     from topoclass.report import write_batch_report
 
-    typer.echo(f"report: {write_batch_report(out, model=trained, progress=True)}")
+    if not no_report:
+        page = write_batch_report(out, model=trained, details=details, jobs=jobs,
+                                  cache_dir=cache, progress=True)
+        typer.echo(f"report: {page}")
     if summary.scored == 0 and summary.skipped == 0:
         raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
                              "see the message column")
@@ -221,15 +228,19 @@ def report(
                                     "beside the CSV)."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
-    details: int = typer.Option(200, "--details", min=0,
-                                help="Detail views for at most this many images."),
+    details: int = typer.Option(200, "--details", min=0, help="Detail views for at most this "
+                                "many images, the most doubtful first."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder the scoring "
+                                      "used (its sites spare measuring the images again)."),
 ) -> None:
     """Rebuild the HTML report of a scores CSV (for example after a killed run)."""
     from topoclass.model import load_model
     from topoclass.report import write_batch_report
 
     trained = load_model(model_dir) if model_dir is not None else None
-    path = write_batch_report(scores_csv, out, model=trained, details=details, progress=True)
+    path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
+                              cache_dir=cache, progress=True)
     typer.echo(f"report: {path}")
 
 
@@ -313,6 +324,47 @@ def suggest(
         for path, _ in ranked:
             typer.echo(str(path))
 
+
+
+@app.command()
+def trend(
+    scores_csv: list[Path] = typer.Argument(..., help="scores.csv files, one per batch, in "
+                                            "acquisition order."),
+    out: Path = typer.Option(..., "--out", help="Folder for trend.png, trend.csv and limits."),
+    by: str | None = typer.Option(None, "--by", help="Order by this column (times or numbers), "
+                                  "or file-time for the image files' times; default: as read."),
+    reference: Path | None = typer.Option(None, "--reference", help="scores.csv of reference "
+                                          "images that set the control limits."),
+    baseline: int = typer.Option(20, "--baseline", min=2, help="Without --reference, the "
+                                 "first this many images set the limits."),
+    charts: str | None = typer.Option(None, "--charts", help="Comma-separated columns to "
+                                      "chart (default: amounts, then class probabilities)."),
+) -> None:
+    """Chart amounts and class probabilities over a run, with control limits and run rules."""
+    from topoclass.scoring import CAUTION
+    from topoclass.trend import (
+        TREND_CAUTION,
+        read_score_tables,
+        trend_table,
+        write_trend,
+    )
+
+    table = read_score_tables(scores_csv)
+    ref = read_score_tables([reference]) if reference is not None else None
+    chosen = [c.strip() for c in charts.split(",") if c.strip()] if charts else None
+    result = trend_table(table, charts=chosen, by=by, reference=ref, baseline=baseline)
+    paths = write_trend(result, out)
+    flagged = result.table[result.table["flagged"]]
+    source = "the reference set" if ref is not None else f"the first {baseline} images"
+    typer.echo(f"charted {len(result.table)} images, {len(result.charts)} charts; "
+               f"limits from {source}")
+    for _, row in flagged.iterrows():
+        fired = [f"{c}: {row[c + '_flags']}" for c in result.charts if row[c + "_flags"]]
+        typer.echo(f"  flagged {row['position']:>4} {row['image']}  ({'; '.join(fired)})")
+    for path in paths:
+        typer.echo(f"wrote {path}")
+    typer.echo("")
+    typer.echo("Caution: " + TREND_CAUTION + " " + CAUTION)
 
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]

@@ -16,7 +16,7 @@ import numpy as np
 from scipy.spatial import Delaunay, QhullError
 
 from topoclass.errors import TopoclassError
-from topoclass.persistence import Diagrams
+from topoclass.persistence import LOOP_FLOOR, Diagrams
 from topoclass.sites import SitePattern, circumcircles
 
 #: Columns of ``defects.csv``; ``length``, ``birth``, ``death`` and ``floor`` in units of the
@@ -25,15 +25,8 @@ from topoclass.sites import SitePattern, circumcircles
 DEFECT_COLUMNS = ("kind", "rank", "kind_count", "length", "birth", "death", "x", "y", "site_i",
                   "site_j", "truncated", "located_by", "floor")
 
-
-#: Noise floor of H1 bars (loops), in spacings. On an ideal triangular lattice no H1 bar has
-#: positive length. The shortest loop a lattice defect opens is the rhombus of two lattice
-#: triangles squared by a 5-7 pair, which persists about sqrt(2) - 1 = 0.41 spacing; a vacancy
-#: persists about sqrt(3) - 1 = 0.73. Positional jitter of a few per cent of the spacing makes
-#: loops of a few hundredths (at most 0.11 on the ordered demo images, measured while choosing
-#: this value). Half the shortest defect loop, 0.2, keeps every defect and drops the jitter.
-LOOP_FLOOR = 0.2
-
+# The noise floor of H1 bars (loops) is topoclass.persistence.LOOP_FLOOR, imported above: the
+# H1 bar count of topoclass.records.barcode_summary uses the same one.
 
 #: Noise floor of H0 bars (the minimum-spanning-tree edge that merges two parts of the
 #: pattern), in spacings: (1 + sqrt(3)) / 2 ~ 1.37, halfway between the first and the second

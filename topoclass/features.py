@@ -161,6 +161,23 @@ def measure_patterns(
     )
 
 
+def cached_measurement(path: str | Path, sha256: str, settings: FeatureSettings | None = None,
+                       *, cache_dir: str | Path | None = None
+                       ) -> tuple[SitePattern, PatternRecord] | None:
+    """The site pattern and record that :func:`iter_records` cached for a file, or None.
+
+    ``sha256`` is the file's content hash as scoring recorded it (``scores.csv``); nothing is
+    measured here, so a miss (another cache folder, caching off, a changed setting) is None.
+    """
+    settings = settings or FeatureSettings()
+    if not sha256 or cache_dir == "":
+        return None
+    cache = _RecordCache(Path(default_cache_dir() if cache_dir is None else cache_dir), settings)
+    pattern = cache.pattern(sha256, str(path))
+    hit = cache.get(sha256, Path(path)) if pattern is not None else None
+    return None if hit is None else (pattern, hit[0])
+
+
 def iter_records(
     paths: Sequence[str | Path],
     settings: FeatureSettings | None = None,
@@ -235,14 +252,15 @@ class _Worker:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             try:
-                record = measure_pattern(path, self.settings)
+                measured = measure_image(path, self.settings)
             except TopoclassError as exc:
                 # Only input errors become a failed result (the readers turn every decoder
                 # failure into ImageReadError); anything else is a bug and must stop the run.
                 return RecordResult(path, sha, None, " ".join(str(exc).split()))
         notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
+        record = measured.record
         if self.cache is not None:
-            self.cache.put(sha, record, notes)
+            self.cache.put(sha, record, notes, measured.pattern)
         return RecordResult(path, sha, record, notes=notes)
 
 
@@ -281,7 +299,18 @@ class _RecordCache:
             # a damaged or older entry is recomputed, never trusted
             return None
 
-    def put(self, sha: str, record: PatternRecord, notes: tuple[str, ...] = ()) -> None:
+    def pattern(self, sha: str, source: str) -> SitePattern | None:
+        file = self.folder / f"{sha}.npz"
+        if not file.exists():
+            return None
+        try:
+            with np.load(file, allow_pickle=False) as data:
+                return _pattern_from_arrays(data, source)
+        except Exception:  # a damaged entry (or one without sites) is measured again
+            return None
+
+    def put(self, sha: str, record: PatternRecord, notes: tuple[str, ...] = (),
+            pattern: SitePattern | None = None) -> None:
         # Write to a temporary file and rename, so a concurrent reader never sees half a file;
         # a failed write (disk full, read-only) removes its temporary file and is otherwise
         # ignored: the cache is an optimisation and must not fail the batch.
@@ -292,7 +321,8 @@ class _RecordCache:
             return
         try:
             with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, notes=np.array(notes, dtype=str), **_record_to_arrays(record))
+                np.savez(fh, notes=np.array(notes, dtype=str), **_record_to_arrays(record),
+                         **_pattern_to_arrays(pattern))
             os.replace(tmp, self.folder / f"{sha}.npz")
         except OSError:
             Path(tmp).unlink(missing_ok=True)
@@ -314,3 +344,22 @@ def _record_from_arrays(data, source: str) -> PatternRecord:
     order = dict(zip(data["order_keys"].tolist(), data["order_values"].tolist(), strict=True))
     amounts = dict(zip(data["amount_keys"].tolist(), data["amount_values"].tolist(), strict=True))
     return PatternRecord(diagrams=diagrams, order=order, source=source, amounts=amounts)
+
+
+def _pattern_to_arrays(pattern: SitePattern | None) -> dict[str, np.ndarray]:
+    # The sites travel with the record so that a report can draw them without measuring the
+    # image again (the costliest part of a detail view otherwise).
+    if pattern is None:
+        return {}
+    pixel = np.nan if pattern.pixel_size_nm is None else float(pattern.pixel_size_nm)
+    return {"p_xy": pattern.xy, "p_border": pattern.border, "p_shape": np.array(pattern.shape),
+            "p_spacing": np.array(pattern.spacing), "p_polarity": np.array(pattern.polarity),
+            "p_pixel_size_nm": np.array(pixel)}
+
+
+def _pattern_from_arrays(data, source: str) -> SitePattern:
+    pixel = float(data["p_pixel_size_nm"])
+    return SitePattern(xy=data["p_xy"], spacing=float(data["p_spacing"]),
+                       polarity=str(data["p_polarity"]), border=data["p_border"],
+                       shape=tuple(int(v) for v in data["p_shape"]),
+                       pixel_size_nm=None if np.isnan(pixel) else pixel, source=source)

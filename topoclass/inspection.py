@@ -21,6 +21,7 @@ SUMMARY_MEASURES = (
     "h1_length_sum",
     "h1_length_sum_per_site",
     "h1_count",
+    "h1_count_raw",
     "h1_truncated_count",
     "psi6_global",
     "psi6_local_mean",
@@ -73,7 +74,8 @@ def summarise(measurement: ImageMeasurement) -> dict:
             summary[key] = _json_number(merged[key])
     for key, value in record.order.items():
         summary.setdefault(key, _json_number(value))
-    summary["h1_count"] = int(bars["h1_count"])
+    summary["h1_count"] = int(bars["h1_count"])  # loops above the noise floor
+    summary["h1_count_raw"] = int(bars["h1_count_raw"])  # every loop, site noise included
     summary["h1_truncated_count"] = int(bars["h1_truncated_count"])
     for key, value in record.amounts.items():
         summary.setdefault(key, _json_number(value))

@@ -40,7 +40,7 @@ def order_measures(pattern: SitePattern, *, clark_evans_edge: str = "cells") -> 
     Parameters
     ----------
     pattern : SitePattern
-        Sites, spacing and border flags; the frame is ``pattern.shape``.
+        Sites, spacing and border flags; the frame is ``pattern.frame``.
     clark_evans_edge : {"cells", "donnelly"}
         Edge handling of the Clark–Evans index. ``"cells"``: interior sites only, their
         nearest neighbours among all sites, and the density of the region they own (their
@@ -64,7 +64,7 @@ def order_measures(pattern: SitePattern, *, clark_evans_edge: str = "cells") -> 
         * ``mean_coordination`` — mean Delaunay coordination (6 on average in any large
           triangulation, by Euler's formula; a check on the border handling);
         * ``nn_mean_per_spacing`` — mean nearest-neighbour distance / spacing;
-        * ``density_per_spacing2`` — sites per spacing² over the whole frame
+        * ``density_per_spacing2`` — sites per spacing² over the searched region
           (``2 / sqrt(3) = 1.1547`` for a triangular lattice whose spacing is the bond length);
         * ``lattice_angle_deg`` — mean lattice orientation ``arg(mean psi6) / 6`` in degrees in
           (-30, 30], image axes (x right, y down);
@@ -93,8 +93,8 @@ def order_measures(pattern: SitePattern, *, clark_evans_edge: str = "cells") -> 
     coord = np.diff(indptr)
     psi = psi6(xy, (indptr, indices))
     nn = nearest_neighbour_distances(xy, focal=interior)
-    rows, cols = pattern.shape
-    area = float(rows * cols)
+    x0, y0, x1, y1 = pattern.frame  # the searched region: a data bar left out holds no sites
+    area = pattern.area
     c_in, psi_in = coord[interior], psi[interior]
     mean_psi = psi_in.mean()
     psi4_in = psi4(xy)[interior]
@@ -102,7 +102,7 @@ def order_measures(pattern: SitePattern, *, clark_evans_edge: str = "cells") -> 
     if clark_evans_edge == "cells":
         r = clark_evans_interior(xy, interior, pattern.delaunay.cell_area, nn=nn)
     else:
-        r = clark_evans(xy, area, perimeter=2.0 * (rows + cols))
+        r = clark_evans(xy, area, perimeter=2.0 * ((x1 - x0) + (y1 - y0)))
     return {
         "psi6_global": float(np.abs(mean_psi)),
         "psi6_local_mean": float(np.abs(psi_in).mean()),

@@ -38,6 +38,15 @@ from topoclass.sites import SitePattern, Triangulation, site_coordinates, triang
 DEFAULT_MAX_SCALE = 2.5
 #: Default depth (spacings) between border sites and the sites bars are charged to.
 DEFAULT_BORDER_GUARD = 1.0
+#: Noise floor of H1 bars (loops), in spacings. On an ideal triangular lattice no H1 bar has
+#: positive length. The shortest loop a lattice defect opens is the rhombus of two lattice
+#: triangles squared by a 5-7 pair, which persists about sqrt(2) - 1 = 0.41 spacing; a vacancy
+#: persists about sqrt(3) - 1 = 0.73. Positional jitter of a few per cent of the spacing makes
+#: loops of a few hundredths (at most 0.11 on the ordered demo images, measured while choosing
+#: this value; on a rendered perfect lattice site-finding noise alone gives a few hundred bars
+#: of at most 0.04, tests/test_vectorize.py). Half the shortest defect loop, 0.2, keeps every
+#: defect and drops the jitter. The defect map and the H1 bar count (``h1_count``) use it.
+LOOP_FLOOR = 0.2
 
 
 @dataclass(frozen=True)

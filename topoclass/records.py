@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from topoclass.persistence import Diagrams
+from topoclass.persistence import LOOP_FLOOR, Diagrams
 
 
 @dataclass(frozen=True)
@@ -40,7 +40,7 @@ class PatternRecord:
 
 
 def barcode_summary(
-    diagrams: Diagrams, quantiles: Sequence[float] = (0.5, 0.9)
+    diagrams: Diagrams, quantiles: Sequence[float] = (0.5, 0.9), *, loop_floor: float = LOOP_FLOOR
 ) -> dict[str, float]:
     """Summary statistics of the H0 and H1 bar lengths of one record.
 
@@ -50,6 +50,10 @@ def barcode_summary(
         The persistence diagrams (spacing units).
     quantiles : sequence of float in [0, 1]
         Quantiles of the bar lengths to report.
+    loop_floor : float
+        H1 bars no longer than this (spacings) are not counted in ``h1_count`` and
+        ``h1_count_per_site``: site-position noise alone opens hundreds of such loops on a
+        perfect lattice (:data:`topoclass.persistence.LOOP_FLOOR`). Cut bars always count.
 
     Returns
     -------
@@ -59,7 +63,8 @@ def barcode_summary(
         variance), ``hd_length_max``, ``hd_length_q<q>``, ``hd_entropy`` (persistent entropy
         ``E = -sum p log p`` with ``p = length / total length``, natural log) and
         ``hd_entropy_normalised`` (``E / log n`` for ``n`` bars, Pielou's evenness: 1 for equal
-        bars, and unlike ``E`` it does not grow with the field of view); then
+        bars, and unlike ``E`` it does not grow with the field of view); then ``h1_count_raw``
+        (every H1 bar, noise included; ``h1_count`` is above ``loop_floor`` only),
         ``h1_truncated_count``, ``h1_truncated_per_site``, ``n_sites`` (``diagrams.n_sites`` when
         the record carries it, else ``len(h0) + 1``) and ``n_sites_counted`` (the number of
         sites the per-site values divide by; see the module notes). H0 covers the finite
@@ -71,8 +76,11 @@ def barcode_summary(
         lengths = bar_lengths(diagrams, dim)
         total = float(lengths.sum())
         p = f"h{dim}_"
-        out[p + "count"] = float(lengths.size)
-        out[p + "count_per_site"] = lengths.size / n_sites
+        counted = lengths.size
+        if dim == 1:
+            counted = int(np.count_nonzero((lengths > loop_floor) | truncated_mask(diagrams)))
+        out[p + "count"] = float(counted)
+        out[p + "count_per_site"] = counted / n_sites
         out[p + "length_sum"] = total
         out[p + "length_sum_per_site"] = total / n_sites
         if lengths.size:
@@ -87,6 +95,7 @@ def barcode_summary(
             out[f"{p}length_q{float(q):g}"] = float(value)
         out[p + "entropy"] = entropy = persistent_entropy(lengths)
         out[p + "entropy_normalised"] = entropy / np.log(lengths.size) if lengths.size > 1 else 0.0
+    out["h1_count_raw"] = float(bar_lengths(diagrams, 1).size)
     truncated = int(np.count_nonzero(truncated_mask(diagrams)))
     out["h1_truncated_count"] = float(truncated)
     out["h1_truncated_per_site"] = truncated / n_sites

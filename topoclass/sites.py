@@ -64,6 +64,13 @@ class SitePattern:
         Physical pixel size when the file recorded it.
     source : str or None
         Path of the image file, for messages and reports.
+    region : (x0, y0, x1, y1) or None
+        Half-open pixel box the sites were searched in (:mod:`topoclass.region`); None for the
+        whole frame. The border flags and the density refer to it.
+    preferred_spacing : bool
+        False when the pattern showed no preferred spacing (no spectral ring) and the filters
+        took their scale from the spots; ``spacing`` is then that of a triangular lattice of the
+        same density.
     """
 
     xy: np.ndarray
@@ -73,6 +80,8 @@ class SitePattern:
     shape: tuple[int, int]
     pixel_size_nm: float | None = None
     source: str | None = field(default=None, compare=False)
+    region: tuple[int, int, int, int] | None = None
+    preferred_spacing: bool = True
 
     def __post_init__(self) -> None:
         xy = np.asarray(self.xy, dtype=np.float64).reshape(-1, 2)
@@ -85,6 +94,19 @@ class SitePattern:
         object.__setattr__(self, "border", border)
         object.__setattr__(self, "shape", (int(self.shape[0]), int(self.shape[1])))
         object.__setattr__(self, "spacing", float(self.spacing))
+        if self.region is not None:
+            object.__setattr__(self, "region", tuple(int(v) for v in self.region))
+
+    @property
+    def frame(self) -> tuple[int, int, int, int]:
+        """``(x0, y0, x1, y1)`` of the searched region (the whole image without one)."""
+        return self.region or (0, 0, self.shape[1], self.shape[0])
+
+    @property
+    def area(self) -> float:
+        """Area of the searched region, in px^2."""
+        x0, y0, x1, y1 = self.frame
+        return float((x1 - x0) * (y1 - y0))
 
     @property
     def n_sites(self) -> int:
@@ -214,6 +236,12 @@ _REDO_TOLERANCE = 0.03  # redo the detection when the spacing moved by more than
 _HONEYCOMB_RATIO = 0.7  # auto polarity: sites this much closer than the spectrum says = wrong
 _RING_CLARITY = 4.0  # a spectral ring stands this many times above the band's median power
 _RING_MAX_WIDTH = 1.0  # full width at half height of a ring, relative to its radius
+# Patterns without a preferred spacing (no ring):
+_SPOT_SIGMAS = 14  # scales of the scale-space search for the spots' size ...
+_SPOT_PER_SIGMA = 4.71  # ... whose best Laplacian scale s* gives spacing sqrt(2) s* / 0.3
+_SPOT_NOISE_FACTOR = 4.0  # spots on a flat background stand this many noise sigmas high ...
+_SPOT_CONTRAST = 6.0  # ... and this many times the background's spread of the filter
+_SPOT_MIN_COUNT = 8
 
 
 def circumcircles(triangles: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -271,6 +299,7 @@ def find_sites(
     source: str | None = None,
     border_width: float = 1.0,
     min_sites: int = 12,
+    region: tuple[int, int, int, int] | None = None,
 ) -> SitePattern:
     """Find the lattice sites (pore or dot centres) of a micrograph.
 
@@ -288,23 +317,72 @@ def find_sites(
     source : str, optional
         Path of the image file, for messages and reports.
     border_width : float
-        Sites closer than this many spacings to the image edge are flagged in ``border``.
+        Sites closer than this many spacings to the edge of the region are flagged in ``border``.
     min_sites : int
         Fewer sites than this raise :class:`PatternError`.
+    region : (x0, y0, x1, y1), optional
+        Half-open pixel box to search (see :mod:`topoclass.region`); nothing outside it becomes
+        a site. The whole frame when omitted. Site coordinates stay in image pixels.
 
     Returns
     -------
     SitePattern
+        When the pattern has no preferred spacing (no ring in the power spectrum, as in a
+        Poisson-like pattern of randomly nucleated pits), the filters take their scale from the
+        spots themselves, ``preferred_spacing`` is False and ``spacing`` is the spacing of a
+        triangular lattice of the same density.
 
     Raises
     ------
     PatternError
-        When the image holds no usable lattice pattern (too small, flat, pure noise, or fewer
-        than ``min_sites`` sites).
+        When the image holds no usable pattern (too small, flat, no spots standing above the
+        noise, or fewer than ``min_sites`` sites).
     TopoclassError
         When an option has an invalid value.
     """
     name = source or "image"
+    _check_options(polarity, pixel_size_nm, border_width, min_sites, name)
+    whole = _as_float_image(image, name)
+    frame = _frame(region, whole.shape, name)
+    x0, y0, x1, y1 = frame
+    img = _as_float_image(whole[y0:y1, x0:x1], name)
+    start, preferred = _starting_scale(img, spacing, name)
+    noise = _pixel_noise(img)
+    if preferred:
+        try:
+            xy, found, measured = _sites_of_lattice(img, start, polarity, noise, name)
+        except PatternError:
+            if spacing is not None:
+                raise
+            # A weak autocorrelation peak of a random pattern is no lattice: measure the spots.
+            start, preferred = _spacing_from_spots(img, name), False
+    if not preferred:
+        xy, found = _detect(img, start, polarity, noise, name, spots=True)
+        measured = _density_spacing(xy.shape[0], img.size)
+    if xy.shape[0] < min_sites:
+        raise PatternError(
+            f"{name}: only {xy.shape[0]} sites found (at least {min_sites} needed); check that "
+            "the image shows a lattice pattern and the magnification"
+        )
+    xy = xy + np.array([x0, y0], dtype=np.float64)
+    return SitePattern(
+        xy=xy,
+        spacing=measured,
+        polarity=found,
+        border=_near_frame(xy, frame, border_width * measured),
+        shape=whole.shape,
+        pixel_size_nm=pixel_size_nm,
+        source=source,
+        region=frame,
+        preferred_spacing=preferred,
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# The steps of find_sites
+
+
+def _check_options(polarity, pixel_size_nm, border_width, min_sites, name: str) -> None:
     if polarity not in ("auto", "bright", "dark"):
         raise TopoclassError(
             f"{name}: polarity must be 'auto', 'bright' or 'dark', not {polarity!r}"
@@ -317,18 +395,38 @@ def find_sites(
         raise TopoclassError(f"{name}: border_width must be >= 0 spacings, not {border_width!r}")
     if int(min_sites) != min_sites or min_sites < 1:
         raise TopoclassError(f"{name}: min_sites must be a positive integer, not {min_sites!r}")
-    img = _as_float_image(image, name)
-    if spacing is None:
-        start = _initial_spacing(img, name)
-    else:
+
+
+def _frame(region, shape: tuple[int, int], name: str) -> tuple[int, int, int, int]:
+    rows, cols = shape
+    if region is None:
+        return 0, 0, int(cols), int(rows)
+    x0, y0, x1, y1 = (int(v) for v in region)
+    if not (0 <= x0 < x1 <= cols and 0 <= y0 < y1 <= rows):
+        raise TopoclassError(
+            f"{name}: region x {x0}-{x1}, y {y0}-{y1} does not fit the {cols}x{rows} px image"
+        )
+    return x0, y0, x1, y1
+
+
+def _starting_scale(img: np.ndarray, spacing: float | None, name: str) -> tuple[float, bool]:
+    """Spacing to set the filters by, and whether the pattern has a preferred spacing."""
+    if spacing is not None:
         start = float(spacing)
         if not (np.isfinite(start) and _MIN_SPACING <= start <= min(img.shape) / 2):
             raise TopoclassError(
                 f"{name}: spacing must be between {_MIN_SPACING:g} and {min(img.shape) / 2:g} "
                 f"pixels for this image, not {spacing!r}"
             )
-    noise = _pixel_noise(img)
+        return start, True
+    found = _spacing_of_lattice(img)
+    if found is not None:
+        return found, True
+    return _spacing_from_spots(img, name), False
 
+
+def _sites_of_lattice(img, start: float, polarity: str, noise: float, name: str):
+    """Sites, polarity and re-measured spacing of a pattern with a preferred spacing."""
     xy, found = _detect(img, start, polarity, noise, name)
     measured = _bond_spacing(xy)
     if polarity == "auto" and measured < _HONEYCOMB_RATIO * start:
@@ -346,32 +444,23 @@ def find_sites(
     if np.isfinite(measured) and abs(measured - start) > _REDO_TOLERANCE * start:
         xy, found = _detect(img, measured, found, noise, name)
         measured = _bond_spacing(xy)
-        if not np.isfinite(measured):
-            measured = start
-    elif not np.isfinite(measured):
+    if not np.isfinite(measured):
         measured = start
+    return xy, found, measured
 
-    if xy.shape[0] < min_sites:
-        raise PatternError(
-            f"{name}: only {xy.shape[0]} sites found (at least {min_sites} needed); check that "
-            "the image shows a lattice pattern and the magnification"
-        )
-    rows, cols = img.shape
-    edge = border_width * measured
-    border = (
-        (xy[:, 0] < edge)
-        | (xy[:, 0] > cols - 1 - edge)
-        | (xy[:, 1] < edge)
-        | (xy[:, 1] > rows - 1 - edge)
-    )
-    return SitePattern(
-        xy=xy,
-        spacing=measured,
-        polarity=found,
-        border=border,
-        shape=img.shape,
-        pixel_size_nm=pixel_size_nm,
-        source=source,
+
+def _density_spacing(n_sites: int, area: float) -> float:
+    """Bond length of a triangular lattice holding ``n_sites`` in ``area`` px^2."""
+    return float(np.sqrt(2.0 / (np.sqrt(3.0) * max(n_sites, 1) / area)))
+
+
+def _near_frame(xy: np.ndarray, frame, edge: float) -> np.ndarray:
+    x0, y0, x1, y1 = frame
+    return (
+        (xy[:, 0] < x0 + edge)
+        | (xy[:, 0] > x1 - 1 - edge)
+        | (xy[:, 1] < y0 + edge)
+        | (xy[:, 1] > y1 - 1 - edge)
     )
 
 
@@ -412,16 +501,62 @@ def _as_float_image(image, name: str) -> np.ndarray:
 
 
 def _initial_spacing(img: np.ndarray, name: str) -> float:
-    power, kx, ky = _power_spectrum(_central_tile(img, _SPECTRUM_TILE))
-    spacing = _spacing_from_spectrum(power, kx, ky)
-    if spacing is None:
-        spacing = _spacing_from_autocorrelation(power)
+    spacing = _spacing_of_lattice(img)
     if spacing is None:
         raise PatternError(
             f"{name}: no repeating feature spacing found (no ring in the power spectrum, no peak "
             "in the autocorrelation); check that the image shows a lattice pattern"
         )
     return spacing
+
+
+def _spacing_of_lattice(img: np.ndarray) -> float | None:
+    """Spacing from the spectrum's first ring, else the autocorrelation; None without either."""
+    power, kx, ky = _power_spectrum(_central_tile(img, _SPECTRUM_TILE))
+    spacing = _spacing_from_spectrum(power, kx, ky)
+    if spacing is None:
+        spacing = _spacing_from_autocorrelation(power)
+    return spacing
+
+
+def _spacing_from_spots(img: np.ndarray, name: str) -> float:
+    """A filter scale for spots without a preferred spacing, from the spots' own size.
+
+    Scale-space blob search (Lindeberg 1998, the scale-normalised Laplacian ``s^2 LoG``): at
+    each scale, the median response of the extrema that stand five noise deviations above the
+    filtered noise; the best scale ``s*`` of a disc of radius ``r`` is ``r / sqrt(2)``. The
+    returned spacing is the one whose blob filter suits pores of that radius (0.3 spacing).
+    """
+    tile = _central_tile(img, 512)
+    noise = _pixel_noise(tile)
+    top = max(1.0, min(tile.shape) / 24.0)
+    best, best_strength = None, 0.0
+    for s in np.geomspace(0.8, max(top, 0.9), _SPOT_SIGMAS):
+        response = ndimage.gaussian_laplace(tile, s, mode="reflect") * np.float32(s * s)
+        bar = 5.0 * noise * _normalised_log_norm(s)
+        for sign in (1.0, -1.0):
+            r = response if sign > 0 else -response
+            peaks = _local_maxima(r, max(1, int(s)), bar)
+            if peaks.shape[0] < _SPOT_MIN_COUNT:
+                continue
+            strength = float(np.median(r[peaks[:, 0], peaks[:, 1]]))
+            if strength > best_strength:
+                best, best_strength = s, strength
+    if best is None:
+        raise PatternError(
+            f"{name}: no spots stand clearly above the noise (no ring in the power spectrum, "
+            "no peak in the autocorrelation, no blobs); check that the image shows a pattern"
+        )
+    return float(np.clip(_SPOT_PER_SIGMA * best, _MIN_SPACING, min(img.shape) / 2))
+
+
+def _normalised_log_norm(s: float) -> float:
+    """L2 norm of scipy's scale-normalised 2-D Laplacian-of-Gaussian kernel at scale ``s``."""
+    radius = int(4.0 * s + 0.5) + 1
+    delta = np.zeros((2 * radius + 1, 2 * radius + 1))
+    delta[radius, radius] = 1.0
+    kernel = ndimage.gaussian_laplace(delta, s, mode="constant") * s * s
+    return float(np.sqrt(np.sum(kernel * kernel)))
 
 
 def _central_tile(img: np.ndarray, size: int) -> np.ndarray:
@@ -538,8 +673,13 @@ def _bond_spacing(xy: np.ndarray) -> float:
 # Detection
 
 
-def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str):
-    """Sites (x, y) and polarity found with the filters set by ``spacing``."""
+def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: str,
+            spots: bool = False):
+    """Sites (x, y) and polarity found with the filters set by ``spacing``.
+
+    ``spots``: the pattern has no preferred spacing, ``spacing`` comes from the spots' size
+    (:func:`_spacing_from_spots`) and the spots sit on a flat background.
+    """
     f = max(1, int(spacing // _DETECT_PX_PER_SPACING))
     low = _block_mean(img, f)
     a = spacing / f
@@ -553,12 +693,21 @@ def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: 
     # Noise of one pixel of ``band``: block averaging divides it by f, the filter by its norm.
     sigma = noise / f * _dog_norm(s_feat, s_sur)
     found = None
-    if polarity == "auto":
+    if spots:
+        # Spots on a flat background: the background's own noise maxima, which a lattice's
+        # walls would push below zero, stand up to a few sigmas high here.
+        sigma *= _SPOT_NOISE_FACTOR / _NOISE_FACTOR
+        if polarity == "auto":
+            polarity = _spot_polarity(band)
+    elif polarity == "auto":
         polarity, found = _polarity(band, a, sigma)
     sign = 1.0 if polarity == "bright" else -1.0
     if sign < 0:
         band = np.negative(band, out=band)
-    peaks, height = found if found is not None else _candidates(band, a, sigma)
+    peaks, height = found if found is not None else _candidates(band, a, sigma,
+                                                                 expected=not spots)
+    if spots and peaks is not None and not _stand_out(band, height):
+        peaks = None  # smooth random texture, not spots on a background
     if peaks is None:
         raise PatternError(
             f"{name}: no features stand clearly above the noise at a spacing of {spacing:.1f} px; "
@@ -566,7 +715,8 @@ def _detect(img: np.ndarray, spacing: float, polarity: str, noise: float, name: 
         )
 
     yx = peaks + _quadratic_offset(band, peaks)
-    yx = _merge_elongated(band, yx, height, _MERGE_DISTANCE * a)
+    if not spots:  # an elongated pore is two maxima in one cell of a lattice
+        yx = _merge_elongated(band, yx, height, _MERGE_DISTANCE * a)
     peaks = np.clip(np.rint(yx).astype(np.intp), 0, np.array(band.shape) - 1)
     yx = (yx + 0.5) * f - 0.5  # block centres back to full-resolution pixel coordinates
     near = (yx < spacing).any(axis=1) | (yx[:, 0] > img.shape[0] - 1 - spacing) | (
@@ -653,7 +803,7 @@ def _bilinear_grid(small: np.ndarray, rr: np.ndarray, cc: np.ndarray) -> np.ndar
     return rows[:, c0] * (1 - tc)[None, :] + rows[:, c1] * tc[None, :]
 
 
-def _candidates(band: np.ndarray, a: float, sigma: float):
+def _candidates(band: np.ndarray, a: float, sigma: float, expected: bool = True):
     """Integer (row, col) maxima of ``band`` that pass as sites, and their heights.
 
     Maxima of a window small enough not to reach the shoulder of a brighter neighbour (its
@@ -664,12 +814,34 @@ def _candidates(band: np.ndarray, a: float, sigma: float):
     peaks = _local_maxima(band, max(1, int(_CANDIDATE_WINDOW * a)), 0.0)
     peaks = _separate(peaks, band[peaks[:, 0], peaks[:, 1]], _MIN_SEPARATION * a)
     height = band[peaks[:, 0], peaks[:, 1]]
-    n_expected = max(1, int(band.size / (np.sqrt(3.0) / 2.0 * a * a)))
+    if expected:
+        n_expected = max(1, int(band.size / (np.sqrt(3.0) / 2.0 * a * a)))
+    else:  # no lattice to count sites by: the maxima above the noise bar are the candidates
+        n_expected = max(1, int(np.count_nonzero(height > _NOISE_FACTOR * sigma)))
     typical = float(np.median(np.sort(height)[::-1][:n_expected])) if height.size else 0.0
     if not typical > _MIN_SIGNAL * sigma:
         return None, None
     keep = height > max(_NOISE_FACTOR * sigma, _RELATIVE_HEIGHT * typical)
     return peaks[keep], height[keep]
+
+
+def _spot_polarity(band: np.ndarray) -> str:
+    """Spots on a flat background: the sign whose extremes reach farther from the background."""
+    lo, hi = np.percentile(band, [0.1, 99.9])
+    return "bright" if hi >= -lo else "dark"
+
+
+def _stand_out(band: np.ndarray, height: np.ndarray) -> bool:
+    """Whether the spots stand far above the background's spread of the filter.
+
+    Spots on a flat background leave most of the filtered image near zero (a small median
+    absolute deviation) and their peaks far above it; smooth random texture has peaks only a
+    few of its own deviations high.
+    """
+    if height.size == 0:
+        return False
+    spread = 1.4826 * float(np.median(np.abs(band - np.median(band))))
+    return float(np.median(height)) > _SPOT_CONTRAST * max(spread, 1e-12)
 
 
 def _polarity(band: np.ndarray, spacing: float, sigma: float):

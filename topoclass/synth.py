@@ -150,6 +150,7 @@ def render_micrograph(
     illumination: float = 0.0,
     noise: float = 0.0,
     contrast: float = 0.6,
+    rim: float = 0.0,
     seed: int | None = 0,
 ) -> np.ndarray:
     """Draw round features at ``xy`` into an image.
@@ -175,6 +176,9 @@ def render_micrograph(
         noise is approximated this way because it is what matters for site finding.
     contrast : float
         Intensity difference between matrix and feature before noise.
+    rim : float
+        Brightness of a thin rim along each feature's edge, relative to ``contrast`` (0 = none):
+        the edge effect of secondary-electron images, where the walls around a pore light up.
     seed : int or None
         Seed of the noise and illumination field.
 
@@ -194,10 +198,12 @@ def render_micrograph(
         feature = (1.0 / (1.0 + np.exp(-arg))).reshape(rows, cols)
     else:
         feature = np.zeros((rows, cols))
+    # 4 f (1 - f) is 1 on the edge of the logistic profile and falls off to both sides.
+    edge = 4.0 * feature * (1.0 - feature) if rim else 0.0
     if polarity == "dark":
-        img = 0.8 - contrast * feature
+        img = 0.8 - contrast * feature + rim * contrast * edge
     elif polarity == "bright":
-        img = 0.2 + contrast * feature
+        img = 0.2 + contrast * feature + rim * contrast * edge
     else:
         raise ValueError(f"polarity must be 'dark' or 'bright', not {polarity!r}")
     if blur > 0:
@@ -214,6 +220,69 @@ def render_micrograph(
     if noise > 0:
         img = img + rng.normal(scale=noise * contrast, size=img.shape)
     return np.clip(img, 0.0, 1.0).astype(np.float32)
+
+
+def add_data_bar(
+    image: np.ndarray,
+    *,
+    height: int | None = None,
+    polarity: str = "dark",
+    edge: str = "bottom",
+    seed: int | None = 0,
+) -> tuple[np.ndarray, int]:
+    """Append an instrument data bar to an invented micrograph, as microscopes export them.
+
+    A uniform band along one edge holding a line of acquisition text (drawn with Pillow's
+    built-in font) and a scale bar with its length, all invented.
+
+    Parameters
+    ----------
+    image : ndarray of shape (rows, cols)
+        Grey image in [0, 1].
+    height : int, optional
+        Band height in pixels; default 12 % of the image rows (at least 24).
+    polarity : {"dark", "bright"}
+        Black band with white marks, or white band with black marks.
+    edge : {"bottom", "top"}
+        Where the band goes.
+    seed : int or None
+        Seed of the text and of the scale bar's length.
+
+    Returns
+    -------
+    image : ndarray of float32, shape (rows + height, cols)
+        The micrograph with the band added outside its frame.
+    boundary : int
+        First row of the band (``edge="bottom"``) or first row below it (``"top"``).
+    """
+    from PIL import ImageDraw, ImageFont
+
+    if polarity not in ("dark", "bright"):
+        raise ValueError(f"polarity must be 'dark' or 'bright', not {polarity!r}")
+    if edge not in ("bottom", "top"):
+        raise ValueError(f"edge must be 'bottom' or 'top', not {edge!r}")
+    image = np.asarray(image, dtype=np.float32)
+    rows, cols = image.shape
+    height = int(height if height is not None else max(24, round(0.12 * rows)))
+    rng = np.random.default_rng(seed)
+    back, ink = (0, 255) if polarity == "dark" else (255, 0)
+    band = Image.new("L", (cols, height), color=back)
+    draw = ImageDraw.Draw(band)
+    size = max(8, min(height // 3, cols // 40))
+    font = ImageFont.load_default(size=size)
+    kv, mag, wd = rng.choice([3, 5, 10, 15]), rng.choice([20, 50, 100]), rng.uniform(3, 9)
+    text = f"{kv} kV   x{mag},000   WD {wd:.1f} mm   line A   sample {rng.integers(1, 99):02d}"
+    draw.text((max(2, cols // 60), height // 2), text, fill=ink, font=font, anchor="lm")
+    bar_len = int(cols * rng.uniform(0.1, 0.2))
+    x1 = cols - max(4, cols // 30)
+    y0 = height // 2 - max(1, height // 12)
+    draw.rectangle([x1 - bar_len, y0, x1, y0 + max(2, height // 6)], fill=ink)
+    draw.text((x1 - bar_len // 2, y0 - 2), f"{rng.choice([200, 500, 1000])} nm", fill=ink,
+              font=font, anchor="mb")
+    strip = np.asarray(band, dtype=np.float32) / 255.0
+    if edge == "bottom":
+        return np.vstack([image, strip]), rows
+    return np.vstack([strip, image]), height
 
 
 def make_sites(
@@ -254,7 +323,8 @@ def make_sites(
 
 
 def make_micrograph(
-    kind: str, *, size: int = 384, seed: int, sample: dict | None = None
+    kind: str, *, size: int = 384, seed: int, sample: dict | None = None,
+    amounts: dict | None = None,
 ) -> tuple[np.ndarray, dict]:
     """One invented top-view micrograph of a porous anodic-alumina membrane, with ground truth.
 
@@ -270,6 +340,10 @@ def make_micrograph(
         Parameters shared by the images of one simulated membrane sample (magnification range,
         pore radius, instrument settings, amount of disorder), as made by :func:`draw_sample`.
         Drawn from ``seed`` when not given.
+    amounts : dict, optional
+        Amounts of disorder of this image, replacing those drawn around the sample's values
+        (for harder sets): ``jitter``, ``vacancy_fraction``, ``merge_fraction``, ``n_grains``,
+        ``angles_deg`` (one lattice angle per grain), ``min_distance``, ``relax_steps``.
 
     Returns
     -------
@@ -294,7 +368,7 @@ def make_micrograph(
 
     lo, hi = sample["spacing_range_px"]
     spacing = float(rng.uniform(lo, hi))
-    params = _image_amounts(kind, sample, rng)
+    params = {**_image_amounts(kind, sample, rng), **(amounts or {})}
     layout = _layout(kind, shape, spacing, rng=rng, params=params)
 
     # Pore radii: one mean per sample, a per-pore spread, and never wider than the wall allows

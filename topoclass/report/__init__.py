@@ -18,7 +18,12 @@ from topoclass.defects import (
     locate_defects,
     write_defects_csv,
 )
-from topoclass.report.batch_page import MAX_DETAILS, MAX_THUMBNAILS, write_batch_report
+from topoclass.report.batch_page import (
+    MAX_DETAILS,
+    MAX_THUMBNAILS,
+    most_doubtful_first,
+    write_batch_report,
+)
 from topoclass.report.figures import (
     CLASS_COLOURS,
     COORDINATION_COLOURS,
@@ -45,7 +50,8 @@ __all__ = [
     "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "GAP_FLOOR",
     "LOOP_FLOOR", "MAX_DETAILS", "MAX_DRAWN_DEFECTS", "defect_counts",
     "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
-    "image_to_figure_pixels", "locate_defects", "plot_confusion", "plot_defects", "plot_grains",
+    "image_to_figure_pixels", "locate_defects", "most_doubtful_first", "plot_confusion",
+    "plot_defects", "plot_grains",
     "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",
     "site_coordination", "write_batch_report", "write_defects_csv", "write_inspection_figures",
     "write_metric_figures", "write_training_figures",

@@ -16,7 +16,8 @@ from topoclass._progress import progress_bar
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings
 from topoclass.pages import html_page
-from topoclass.report.figures import CLASS_COLOURS, write_inspection_figures
+from topoclass.report.detail_view import write_detail_pictures
+from topoclass.report.figures import CLASS_COLOURS
 
 #: Detail views (inspection pictures) are made for at most this many images of a batch.
 MAX_DETAILS = 200
@@ -31,7 +32,8 @@ _THUMB_PX = 72  # longest side of an embedded thumbnail
 
 def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = None, *,
                        model=None, details: int = MAX_DETAILS,
-                       thumbnails: int = MAX_THUMBNAILS, progress: bool = False) -> Path:
+                       thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
+                       cache_dir: str | Path | None = None, progress: bool = False) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
@@ -52,9 +54,17 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     model : TrainedModel, optional
         Supplies the site-finding settings of the detail views and the model's name.
     details : int
-        Detail views for at most this many images (unfamiliar ones first, then in file order).
+        Detail views for at most this many images, the most doubtful first
+        (:func:`most_doubtful_first`).
     thumbnails : int
         Embedded thumbnails for at most this many images.
+    jobs : int
+        Worker processes for the thumbnails and detail views (joblib); 1 works in this process.
+    cache_dir : path, optional
+        The feature cache the scoring run used (default:
+        :func:`topoclass.features.default_cache_dir`). A detail view takes the image's sites
+        and diagrams from it; an image not found there is measured again, which costs as much
+        as scoring it.
     progress : bool
         Show a progress bar while the images are read.
 
@@ -89,35 +99,19 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     # The review band's verdict (files from before it have no verdict column).
     review = [r for r in ok if r.get("verdict") == "review"]
     failed = [r for r in rows if r.get("status") != "ok"]
-    # Detail views: unfamiliar images first (they are the ones to check by eye), then review,
-    # then the rest.
-    detail_order = unfamiliar + review + [r for r in ok if not _is_unfamiliar(r)
-                                          and r.get("verdict") != "review"]
-    detail_ids = {id(r) for r in detail_order[:max(details, 0)]}
+    detail_ids = {id(r) for r in most_doubtful_first(ok, classes)[:max(details, 0)]}
     settings = FeatureSettings.from_model(model)
 
+    work = [(n, row, _image_path(row["image"], base), n < thumbnails, id(row) in detail_ids)
+            for n, row in enumerate(rows) if n < thumbnails or id(row) in detail_ids]
+    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION)
     thumbs: dict[int, str] = {}
     links: dict[int, str] = {}
-    todo = sum(1 for n, r in enumerate(rows) if n < thumbnails or id(r) in detail_ids)
-    bar = progress_bar(todo, "report") if progress else None
-    advance = bar.__enter__() if bar is not None else (lambda: None)
-    try:
-        for n, row in enumerate(rows):
-            in_thumbs = n < thumbnails
-            wants_detail = id(row) in detail_ids
-            if not (in_thumbs or wants_detail):
-                continue
-            path = _image_path(row["image"], base)
-            if in_thumbs:
-                thumbs[n] = _thumbnail(path, settings)
-            if wants_detail:
-                page = _detail_view(path, row, n, files, out_html, settings, classes, CAUTION)
-                if page:
-                    links[n] = page
-            advance()
-    finally:
-        if bar is not None:
-            bar.__exit__(None, None, None)
+    for n, thumb, link in _run(assets, work, jobs, progress):
+        if thumb:
+            thumbs[n] = thumb
+        if link:
+            links[n] = link
 
     # As in the scoring summary: an unfamiliar or review image's class is not counted.
     counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
@@ -143,59 +137,122 @@ def _image_path(image: str, base: Path) -> Path:
     return path if path.is_absolute() or path.exists() else base / path
 
 
-def _thumbnail(path: Path, settings) -> str:
-    """A small grey PNG of the image as a data URI, or '' when the file cannot be read."""
+def most_doubtful_first(rows: list[dict], classes: list[str]) -> list[dict]:
+    """Scored rows in the order they get detail views: the most doubtful first.
+
+    Unfamiliar images come first (their probabilities rest on nothing like them in the
+    training set, so they are the ones to check by eye), then those the review band sends to
+    a person (``verdict`` "review"), then the others; within each, by increasing margin
+    between the two most probable classes (the closer a call, the nearer it is to flipping);
+    ties keep the file order.
+    """
+    def margin(row: dict) -> float:
+        p = sorted((_float(row.get(f"p_{c}")) for c in classes), reverse=True)
+        return p[0] - p[1] if len(p) > 1 else 1.0
+
+    def tier(row: dict) -> int:
+        return 0 if _is_unfamiliar(row) else 1 if row.get("verdict") == "review" else 2
+
+    order = sorted(range(len(rows)), key=lambda k: (tier(rows[k]), margin(rows[k]), k))
+    return [rows[k] for k in order]
+
+
+def _float(value) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return 0.0
+    return v if math.isfinite(v) else 0.0
+
+
+def _run(assets, work: list, jobs: int, progress: bool):
+    """Yield ``assets(*item)`` for every work item, in a joblib pool when ``jobs`` > 1."""
+    if jobs > 1 and len(work) > 1:
+        from joblib import Parallel, delayed
+
+        results = Parallel(n_jobs=jobs, return_as="generator")(
+            delayed(assets)(*item) for item in work)
+    else:
+        results = (assets(*item) for item in work)
+    if not progress:
+        yield from results
+        return
+    with progress_bar(len(work), "report") as advance:
+        for result in results:
+            advance()
+            yield result
+
+
+class _ImageAssets:
+    """Thumbnail and detail view of one image (picklable, for the worker pool)."""
+
+    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution):
+        self.files, self.page_name, self.settings = files, page_name, settings
+        self.cache_dir, self.classes, self.caution = cache_dir, classes, caution
+
+    def __call__(self, n: int, row: dict, path: Path, thumb: bool, detail: bool
+                 ) -> tuple[int, str, str]:
+        from topoclass.features import cached_measurement, measure_image
+        from topoclass.images import read_micrograph
+
+        try:
+            if detail:
+                hit = cached_measurement(path, row.get("sha256", ""), self.settings,
+                                         cache_dir=self.cache_dir)
+                if hit is None:  # not in this cache: measure again, as scoring did
+                    m = measure_image(path, self.settings)
+                    image, pattern, diagrams = m.micrograph.image, m.pattern, m.record.diagrams
+                else:
+                    pattern, record = hit
+                    image = read_micrograph(path, max_pixels=self.settings.max_pixels).image
+                    diagrams = record.diagrams
+            else:
+                image = read_micrograph(path, max_pixels=self.settings.max_pixels).image
+        except (TopoclassError, OSError) as exc:
+            # A failed row's file, or one changed or gone since it was scored: its row (or
+            # this note) says why, and the report goes on.
+            if detail:
+                folder = self._folder(n, row)
+                folder.mkdir(parents=True, exist_ok=True)
+                (folder / "error.txt").write_text(" ".join(str(exc).split()), encoding="utf-8")
+            return n, "", ""
+        link = self._detail_page(n, row, image, pattern, diagrams) if detail else ""
+        return n, _thumbnail(image) if thumb else "", link
+
+    def _folder(self, n: int, row: dict) -> Path:
+        key = (row.get("sha256") or "")[:12] or f"{n:05d}"
+        return self.files / f"{n:05d}-{key}"
+
+    def _detail_page(self, n, row, image, pattern, diagrams) -> str:
+        folder = self._folder(n, row)
+        pictures = write_detail_pictures(image, pattern, diagrams, folder)
+        probs = "".join(f"<tr><td>{html.escape(c)}</td><td>{_num(row.get('p_' + c))}</td></tr>"
+                        for c in self.classes)
+        body = (
+            f"<h1>{html.escape(Path(row['image']).name)}</h1>"
+            f"<p class='path'>{html.escape(row['image'])}</p>"
+            f"<p>predicted <b>{html.escape(row.get('predicted', ''))}</b>, confidence "
+            f"{_num(row.get('confidence'))}; unfamiliar: {html.escape(row.get('unfamiliar', ''))}"
+            f"{' — ' + html.escape(row['message']) if row.get('message') else ''}</p>"
+            f"<table class='small'><tr><th>class</th><th>probability</th></tr>{probs}</table>"
+            f"<p class='caution'>{html.escape(self.caution)}</p>"
+            f"{pictures}"
+            f"<p><a href='../../{html.escape(self.page_name)}'>back to the report</a></p>"
+        )
+        title = f"topoclass — {Path(row['image']).name}"
+        (folder / "index.html").write_text(html_page(title, body), encoding="utf-8")
+        return f"{self.files.name}/{folder.name}/index.html"
+
+
+def _thumbnail(image: np.ndarray) -> str:
+    """A small grey PNG of the image as a data URI."""
     from PIL import Image
 
-    from topoclass.images import read_micrograph
-
-    try:
-        image = read_micrograph(path, max_pixels=settings.max_pixels).image
-    except Exception:  # a failed row's file: no thumbnail, the row says why
-        return ""
     im = Image.fromarray(np.clip(image * 255 + 0.5, 0, 255).astype(np.uint8))
     im.thumbnail((_THUMB_PX, _THUMB_PX), Image.Resampling.LANCZOS)
     buf = io.BytesIO()
     im.save(buf, format="PNG", optimize=True)
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
-
-
-def _detail_view(path, row, n, files: Path, out_html: Path, settings, classes, caution) -> str:
-    """Measure the image again, write its pictures and a small page; return the page link."""
-    from topoclass.features import measure_image
-
-    key = (row.get("sha256") or "")[:12] or f"{n:05d}"
-    folder = files / f"{n:05d}-{key}"
-    pictures = ["overlay.png", "diagram.png", "defects.png"]
-    if not all((folder / p).is_file() for p in pictures):
-        try:
-            m = measure_image(path, settings)
-            write_inspection_figures(m.micrograph.image, m.pattern, m.record.diagrams, folder)
-        except Exception as exc:  # the batch report never stops for one image
-            folder.mkdir(parents=True, exist_ok=True)
-            (folder / "error.txt").write_text(" ".join(str(exc).split()), encoding="utf-8")
-            return ""
-    probs = "".join(
-        f"<tr><td>{html.escape(c)}</td><td>{_num(row.get('p_' + c))}</td></tr>" for c in classes
-    )
-    body = (
-        f"<h1>{html.escape(Path(row['image']).name)}</h1>"
-        f"<p class='path'>{html.escape(row['image'])}</p>"
-        f"<p>predicted <b>{html.escape(row.get('predicted', ''))}</b>, confidence "
-        f"{_num(row.get('confidence'))}; unfamiliar: {html.escape(row.get('unfamiliar', ''))}"
-        f"{' — ' + html.escape(row['message']) if row.get('message') else ''}</p>"
-        f"<table class='small'><tr><th>class</th><th>probability</th></tr>{probs}</table>"
-        "<h2>Sites by Delaunay coordination</h2><img src='overlay.png' alt='site overlay'>"
-        "<h2>Persistence diagram and barcode</h2><img src='diagram.png' alt='diagram'>"
-        "<h2>Defect map</h2><img src='defects.png' alt='defect map'>"
-        "<p><a href='defects.csv'>defects.csv</a> — the places drawn above.</p>"
-        f"<p class='caution'>{html.escape(caution)}</p>"
-        f"<p><a href='../{html.escape(out_html.name)}'>back to the report</a></p>"
-    )
-    title = f"topoclass — {Path(row['image']).name}"
-    (folder / "index.html").write_text(html_page(title, body),
-                                       encoding="utf-8")
-    return f"{files.name}/{folder.name}/index.html"
 
 
 def _num(value, digits: int = 3) -> str:
@@ -288,7 +345,9 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
     notes = []
     if len(rows) > thumbnails:
         notes.append(f"thumbnails for the first {thumbnails} of {len(rows)} images")
-    notes.append(f"detail views for at most {details} images (unfamiliar ones first)")
+    notes.append(f"detail views for at most {details} images, the most doubtful first "
+                 "(unfamiliar ones, then those for review, then the smallest margin "
+                 "between the two likeliest classes)")
     parts.append("<h2>All images</h2><p class='note'>Click a column header to sort; click "
                  "again to reverse. " + "; ".join(notes).capitalize() + ".</p>")
     head = ["<th data-type='num'>#</th><th>image</th><th data-type='text'>predicted</th>"]

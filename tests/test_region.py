@@ -1,0 +1,161 @@
+"""Analysed region: data bars found and left out; patterns without a preferred spacing."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import skimage.data
+from scipy.spatial import cKDTree
+
+from topoclass.errors import PatternError, TopoclassError
+from topoclass.order import order_measures
+from topoclass.region import analysed_region, find_data_bar, parse_region
+from topoclass.sites import find_sites
+from topoclass.synth import add_data_bar, make_micrograph, render_micrograph
+
+
+def _to_bits(image: np.ndarray, bits: int) -> np.ndarray:
+    # What the reader does with an 8- or 16-bit file: integers scaled back to [0, 1].
+    top = 2**bits - 1
+    return (np.round(np.clip(image, 0, 1) * top) / top).astype(np.float32)
+
+
+# --------------------------------------------------------------------------------------------
+# data bars on invented exports (our own generator: synth.add_data_bar, text drawn by Pillow)
+
+
+@pytest.mark.parametrize("bits", [8, 16])
+@pytest.mark.parametrize("polarity", ["dark", "bright"])
+@pytest.mark.parametrize("edge", ["bottom", "top"])
+def test_data_bar_found_and_holds_no_site(bits, polarity, edge):
+    micrograph, _ = make_micrograph("vacancies", size=256, seed=3)
+    exported, boundary = add_data_bar(micrograph, polarity=polarity, edge=edge, seed=4)
+    image = _to_bits(exported, bits)
+    bar = find_data_bar(image)
+    assert bar is not None and bar.edge == edge
+    assert abs(bar.boundary - boundary) <= 2  # the issue's tolerance on the band's true edge
+    assert bar.n_marks >= 10  # the text glyphs and the scale bar
+    region = analysed_region(image)
+    pattern = find_sites(image, region=region.box)
+    band = pattern.xy[:, 1] >= boundary if edge == "bottom" else pattern.xy[:, 1] < boundary
+    assert not band.any()
+    assert "data bar" in region.left_out()
+
+
+def test_data_bar_leaves_the_sites_of_the_micrograph_as_they_were():
+    micrograph, _ = make_micrograph("ordered", size=256, seed=8)
+    plain = find_sites(micrograph)
+    exported, _ = add_data_bar(micrograph, polarity="dark", seed=9)
+    region = analysed_region(exported)
+    with_bar = find_sites(exported, region=region.box)
+    # Sites away from the band edge (one spacing) agree; the band holds none.
+    keep = plain.xy[:, 1] < region.box[3] - plain.spacing
+    dist, _ = cKDTree(with_bar.xy).query(plain.xy[keep])
+    assert np.quantile(dist, 0.99) < 0.5
+    assert abs(with_bar.spacing - plain.spacing) < 0.01 * plain.spacing
+
+
+def test_without_region_the_data_bar_yields_spurious_sites():
+    # What the issue measured: the glyphs become sites when nothing is left out.
+    micrograph, _ = make_micrograph("ordered", size=256, seed=8)
+    exported, boundary = add_data_bar(micrograph, polarity="dark", seed=9)
+    pattern = find_sites(exported)
+    assert np.count_nonzero(pattern.xy[:, 1] >= boundary) > 0
+
+
+@pytest.mark.parametrize("name", ["camera", "coins", "moon", "page"])
+def test_data_bar_pasted_on_scikit_image_pictures(name):
+    # scikit-image's shipped pictures (skimage.data) with our own bar pasted below them: the
+    # band is found at its true edge; the pictures alone have none.
+    picture = getattr(skimage.data, name)().astype(np.float32) / 255.0
+    assert find_data_bar(picture) is None
+    for polarity in ("dark", "bright"):
+        exported, boundary = add_data_bar(picture, polarity=polarity, seed=1)
+        bar = find_data_bar(exported)
+        assert bar is not None and bar.edge == "bottom"
+        assert abs(bar.boundary - boundary) <= 2
+
+
+@pytest.mark.parametrize("kind", ["ordered", "vacancies", "grains", "disordered"])
+def test_no_data_bar_on_plain_micrographs(kind):
+    for seed in range(3):
+        image, _ = make_micrograph(kind, size=256, seed=seed)
+        assert find_data_bar(image) is None
+        assert analysed_region(image).whole
+
+
+def test_region_option_in_pixels_and_fractions():
+    image, _ = make_micrograph("ordered", size=200, seed=1)
+    assert analysed_region(image, (10, 20, 150, 180), auto=False).box == (10, 20, 150, 180)
+    assert analysed_region(image, (0, 0, 1, 0.5), auto=False).box == (0, 0, 200, 100)
+    assert parse_region("0,0,1,0.9") == (0.0, 0.0, 1.0, 0.9)
+    assert parse_region(None) is None
+    for bad in ("1,2,3", "a,b,c,d", "5,5,2,8", "-1,0,4,4"):
+        with pytest.raises(TopoclassError, match="--region"):
+            parse_region(bad)
+    with pytest.raises(TopoclassError, match="x.tif.*does not fit"):
+        analysed_region(image, (0, 0, 500, 100), source="x.tif")
+    with pytest.raises(TopoclassError, match="x.tif.*smaller than"):
+        analysed_region(image, (0, 0, 10, 100), source="x.tif")
+    pattern = find_sites(image, region=(50, 40, 150, 160))
+    assert pattern.frame == (50, 40, 150, 160)
+    assert (pattern.xy[:, 0] >= 50).all() and (pattern.xy[:, 0] < 150).all()
+    assert (pattern.xy[:, 1] >= 40).all() and (pattern.xy[:, 1] < 160).all()
+
+
+# --------------------------------------------------------------------------------------------
+# patterns without a preferred spacing
+
+
+def _poisson_spots(seed: int, *, size=640, nn_mean=24.0, polarity="dark"):
+    rng = np.random.default_rng(seed)
+    density = (0.5 / nn_mean) ** 2  # Poisson: mean NN distance 0.5 / sqrt(density)
+    pad = 20
+    n = rng.poisson(density * (size + 2 * pad) ** 2)
+    xy = rng.uniform(-pad, size + pad, (n, 2))
+    image = render_micrograph(xy, (size, size), 1.5, polarity=polarity, blur=0.5, noise=0.05,
+                              seed=seed)
+    return image, xy
+
+
+@pytest.mark.parametrize(("seed", "polarity"), [(0, "dark"), (1, "bright"), (2, "dark")])
+def test_poisson_spots_are_measured_with_clark_evans_near_one(seed, polarity):
+    # Clark & Evans, Ecology 35, 445 (1954): for a Poisson pattern R = 1, and the mean
+    # nearest-neighbour distance has standard error 0.26136 / sqrt(N density), that is
+    # 0.26136 / sqrt(N density) / (0.5 / sqrt(density)) = 0.52272 / sqrt(N) on R.
+    image, truth = _poisson_spots(seed, polarity=polarity)
+    pattern = find_sites(image)
+    assert not pattern.preferred_spacing
+    assert pattern.polarity == polarity
+    inside = ((truth >= 0) & (truth <= image.shape[0] - 1)).all(axis=1)
+    dist, _ = cKDTree(pattern.xy).query(truth[inside])
+    assert np.mean(dist < 1.5) >= 0.97  # what a 1.5 px spot allows to resolve
+    measures = order_measures(pattern)
+    standard_error = 0.26136 / np.sqrt(pattern.n_sites * pattern.n_sites / pattern.area)
+    standard_error /= 0.5 / np.sqrt(pattern.n_sites / pattern.area)
+    assert abs(measures["clark_evans_r"] - 1.0) <= 3 * standard_error
+    # Bond-orientational order of a random pattern: |mean psi6| of N random unit phases is
+    # about 1 / sqrt(N) (Halperin & Nelson 1978 define psi6; the 1/sqrt(N) is elementary).
+    assert measures["psi6_global"] < 0.15
+
+
+def test_blank_image_still_fails_clearly():
+    image = np.random.default_rng(5).normal(0.5, 0.05, (256, 256)).astype(np.float32)
+    with pytest.raises(PatternError, match="blank.tif"):
+        find_sites(image, source="blank.tif")
+
+
+def test_rimmed_pores_count_once():
+    # Secondary-electron edge effect: dark pores with bright rims. Truth: the drawn centres.
+    from topoclass.synth import hexagonal_lattice
+
+    shape = (256, 256)
+    xy = hexagonal_lattice(shape, 14.0, angle=11.0, jitter=0.02, margin=-14, seed=2)
+    image = render_micrograph(xy, shape, 4.2, rim=0.8, blur=0.8, noise=0.05, seed=3)
+    pattern = find_sites(image)
+    inside = ((xy >= 14) & (xy <= 256 - 15)).all(axis=1)
+    dist, _ = cKDTree(pattern.xy).query(xy[inside])
+    assert np.mean(dist < 3.0) >= 0.98
+    back, _ = cKDTree(xy).query(pattern.xy[~pattern.border])
+    assert np.mean(back < 3.0) >= 0.98  # no ring of bright candidates
+    assert abs(pattern.spacing - 14.0) < 0.3
