@@ -9,16 +9,18 @@ from topoclass.model import DoubtFade, NeighbourDensityNovelty
 
 
 def test_fade_hand_worked():
-    # p' = w p + (1 - w) / K, w = clip((1 - d) / (1 - d0), floor, 1); worked by hand.
-    fade = DoubtFade(start=0.5, floor=0.02).fit(["a", "b", "c", "d"], [0.0, 0.5, 0.5, 1.0])
+    # p' = w p + (1 - w) / K; w = 1 up to d0, linear to a at d = 1, a / d^2 beyond, never
+    # below the floor; worked by hand with d0 = 0.5, a = 0.5, floor = 0.02, K = 4.
+    fade = DoubtFade(start=0.5).fit(["a", "b", "c", "d"], [0.0, 0.5, 0.5, 1.0])
     assert fade.start_ == pytest.approx(0.5)
+    assert fade.weight([0.2, 0.75, 1.0, 2.0, 10.0]) == pytest.approx([1, 0.75, 0.5, 0.125,
+                                                                      0.02])
     p = np.array([[0.85, 0.05, 0.05, 0.05]] * 4)
-    out = fade.apply(p, [0.2, 0.75, 1.0, 3.0])
+    out = fade.apply(p, [0.2, 0.75, 1.0, 10.0])
     assert out[0] == pytest.approx([0.85, 0.05, 0.05, 0.05])  # typical: unchanged
-    assert out[1] == pytest.approx([0.55, 0.15, 0.15, 0.15])  # w = 0.5
-    # At the threshold and beyond, w = floor: 0.02 * 0.85 + 0.98 / 4 = 0.262.
-    assert out[2] == pytest.approx([0.262, 0.246, 0.246, 0.246])
-    assert out[3] == pytest.approx(out[2])
+    assert out[1] == pytest.approx([0.7, 0.1, 0.1, 0.1])  # w = 0.75
+    assert out[2] == pytest.approx([0.55, 0.15, 0.15, 0.15])  # w = 0.5 at the threshold
+    assert out[3] == pytest.approx([0.262, 0.246, 0.246, 0.246])  # floor: 0.017 + 0.245
     assert out.sum(axis=1) == pytest.approx(np.ones(4))
     assert np.all(np.argmax(out, axis=1) == 0)  # the top class never changes
 
@@ -65,8 +67,8 @@ def test_square_lattice_is_unfamiliar(small_model, tmp_path):
     assert np.all(score > 1.0), (score, reasons)
     assert all(reasons)
     assert model.verdicts(proba, score) == ["unfamiliar"] * len(records)
-    # Beyond the threshold the fade leaves next to equal odds (floor 0.02 of the classifier's).
-    assert np.all(proba.max(axis=1) <= 0.02 + 0.98 / proba.shape[1] + 1e-9)
+    # Beyond the threshold the fade keeps at most half of the classifier's own answer.
+    assert np.all(proba.max(axis=1) <= 0.5 + 0.5 / proba.shape[1] + 1e-9)
 
 
 def test_harder_sample_is_harder():

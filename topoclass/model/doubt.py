@@ -5,14 +5,20 @@ ceiling, whether it sits in the middle of a training class or at the far edge of
 labelled. Only the novelty checks see the difference, so the rule here lets them speak in the
 probabilities too:
 
-``p' = w(d) p + (1 - w(d)) / K``, with ``w(d) = clip((1 - d) / (1 - d0), w_min, 1)``
+``p' = w(d) p + (1 - w(d)) / K``, with
 
-where ``d`` is the image's unfamiliarity (the largest novelty score; 1 is the threshold at
-which it is called unfamiliar), ``K`` the number of classes and ``d0`` the ``start`` quantile
-of the training images' out-of-fold unfamiliarity. An image as typical as most training
-images keeps its probabilities; between ``d0`` and the threshold they fade linearly toward
-equal odds; at the threshold and beyond only ``w_min`` (default 0.02) of them is left, so the
-model says it knows next to nothing about the image. The target is equal odds rather than the
+* ``w = 1`` for ``d <= d0``,
+* ``w = 1 - (1 - a) (d - d0) / (1 - d0)`` for ``d0 < d <= 1``,
+* ``w = max(a / d^2, floor)`` beyond,
+
+where ``d`` is the image's unfamiliarity (its largest graded novelty score, see
+:meth:`topoclass.model.TrainedModel.assess`; 1 is the threshold at which it is called
+unfamiliar), ``K`` the number of classes, ``d0`` the ``start`` quantile of the training
+images' out-of-fold unfamiliarity and ``a`` (``at_threshold``, default 0.5) the weight left at
+the threshold. An image as typical as most training images keeps its probabilities; toward the
+edge of the training set they fade linearly toward equal odds, to half weight at the threshold;
+beyond it they keep fading with the square of the distance, down to ``floor`` (0.02), so a
+photograph of something else gets next to equal odds. The target is equal odds rather than the
 class shares of the labelled set, because those shares are the lab's choice of what to label,
 and because mixing with a constant vector keeps the ranking of the classes: the top class never
 changes, only how sure the numbers are (the same uniform mixing as the evidence limit,
@@ -35,9 +41,11 @@ class DoubtFade:
     ----------
     start : float
         Quantile of the training images' out-of-fold unfamiliarity where the fade begins.
+    at_threshold : float
+        Weight left to the classifier's own probabilities at the threshold.
     floor : float
-        Weight left to the classifier's own probabilities at and beyond the threshold (> 0, so
-        that the top class stays the top class).
+        Least weight left far beyond the threshold (> 0, so that the top class stays the top
+        class).
 
     Attributes
     ----------
@@ -46,16 +54,18 @@ class DoubtFade:
         Unfamiliarity at which the fade begins (below 1).
     """
 
-    def __init__(self, start: float = 0.9, floor: float = 0.02):
+    def __init__(self, start: float = 0.9, at_threshold: float = 0.5, floor: float = 0.02):
         self.start = start
+        self.at_threshold = at_threshold
         self.floor = floor
 
     def fit(self, classes, oof_unfamiliarity) -> DoubtFade:
         """The fade's start from the training images' out-of-fold unfamiliarity."""
         if not 0.0 <= float(self.start) <= 1.0:
             raise ValueError(f"start must be a quantile in [0, 1], not {self.start!r}")
-        if not 0.0 < float(self.floor) <= 1.0:
-            raise ValueError(f"floor must be in (0, 1], not {self.floor!r}")
+        if not 0.0 < float(self.floor) <= float(self.at_threshold) <= 1.0:
+            raise ValueError(f"need 0 < floor <= at_threshold <= 1, not {self.floor!r} and "
+                             f"{self.at_threshold!r}")
         self.n_classes_ = int(np.asarray(classes).shape[0])
         d = np.asarray(oof_unfamiliarity, dtype=np.float64)
         # Never start at or beyond the threshold: the fade must reach the prior there.
@@ -65,7 +75,11 @@ class DoubtFade:
     def weight(self, unfamiliarity) -> np.ndarray:
         """Weight of the classifier's own probabilities, 1 (keep) to 0 (prior only)."""
         d = np.asarray(unfamiliarity, dtype=np.float64)
-        return np.clip((1.0 - d) / (1.0 - self.start_), float(self.floor), 1.0)
+        a = float(self.at_threshold)
+        inside = 1.0 - (1.0 - a) * np.clip((d - self.start_) / (1.0 - self.start_), 0.0, 1.0)
+        with np.errstate(divide="ignore"):
+            beyond = np.maximum(a / np.maximum(d, 1.0) ** 2, float(self.floor))
+        return np.where(d > 1.0, beyond, inside)
 
     def apply(self, proba, unfamiliarity) -> np.ndarray:
         """The faded probabilities ``w p + (1 - w) / K`` (rows still sum to 1)."""
@@ -74,7 +88,8 @@ class DoubtFade:
         return w * proba + (1.0 - w) / proba.shape[1]
 
     def describe(self) -> dict:
-        return {"rule": "p' = w p + (1 - w) / K, w = clip((1 - d) / (1 - d0), floor, 1), d the "
-                        "unfamiliarity (1 = threshold)",
+        return {"rule": "p' = w p + (1 - w) / K; w = 1 up to d0, linear to at_threshold at "
+                        "d = 1 (the unfamiliarity threshold), at_threshold / d^2 beyond, never "
+                        "below floor",
                 "start_quantile": float(self.start), "d0": self.start_,
-                "floor": float(self.floor)}
+                "at_threshold": float(self.at_threshold), "floor": float(self.floor)}

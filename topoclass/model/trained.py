@@ -103,20 +103,28 @@ class TrainedModel:
         """
         proba = limit_by_evidence(self.estimator.predict_proba(X), self.settings["n_samples"])
         mahalanobis = self.novelty.score(X)
-        score = mahalanobis
         reasons: list[list[str]] = [[] for _ in range(len(mahalanobis))]
-        for check in (self.range_check, getattr(self, "density_check", None)):
-            if check is not None:
-                score = np.maximum(score, check.score(X))
-                for words, more in zip(reasons, check.reasons(X), strict=True):
-                    words.extend(more)
+        # The distance-like checks, measured out-of-fold in training: they set the fade.
+        graded = mahalanobis
+        density = getattr(self, "density_check", None)
+        if density is not None:
+            graded = np.maximum(graded, density.score(X))
+            for words, more in zip(reasons, density.reasons(X), strict=True):
+                words.extend(more)
+        score = graded
+        if self.range_check is not None:
+            # A pass/fail check: every value inside the range scores 1 / (1 + tolerance), so
+            # it flags an image but says nothing about how typical a familiar one is.
+            score = np.maximum(score, self.range_check.score(X))
+            for words, more in zip(reasons, self.range_check.reasons(X), strict=True):
+                words[:0] = more
         for words, m in zip(reasons, mahalanobis, strict=True):
             if m > 1.0:
                 words.append(f"features far from every training image ({m:.3g} times the "
                              "allowed distance)")
         doubt = getattr(self, "doubt", None)
         if doubt is not None:
-            proba = doubt.apply(proba, score)
+            proba = doubt.apply(proba, np.where(score > 1.0, score, graded))
         return proba, score, reasons
 
     def is_unfamiliar(self, X) -> np.ndarray:
