@@ -11,7 +11,7 @@ from topoclass.model import DoubtFade, NeighbourDensityNovelty
 def test_fade_hand_worked():
     # p' = w p + (1 - w) / K; w = 1 up to d0, linear to a at d = 1, a / d^2 beyond, never
     # below the floor; worked by hand with d0 = 0.5, a = 0.5, floor = 0.02, K = 4.
-    fade = DoubtFade(start=0.5).fit(["a", "b", "c", "d"], [0.0, 0.5, 0.5, 1.0])
+    fade = DoubtFade(start=0.5, at_threshold=0.5).fit(["a", "b", "c", "d"], [0.0, 0.5, 0.5, 1.0])
     assert fade.start_ == pytest.approx(0.5)
     assert fade.weight([0.2, 0.75, 1.0, 2.0, 10.0]) == pytest.approx([1, 0.75, 0.5, 0.125,
                                                                       0.02])
@@ -67,8 +67,8 @@ def test_square_lattice_is_unfamiliar(small_model, tmp_path):
     assert np.all(score > 1.0), (score, reasons)
     assert all(reasons)
     assert model.verdicts(proba, score) == ["unfamiliar"] * len(records)
-    # Beyond the threshold the fade keeps at most half of the classifier's own answer.
-    assert np.all(proba.max(axis=1) <= 0.5 + 0.5 / proba.shape[1] + 1e-9)
+    # Beyond the threshold the fade keeps less than the default 0.8 of the classifier's answer.
+    assert np.all(proba.max(axis=1) < 0.8 + 0.2 / proba.shape[1])
 
 
 def test_harder_sample_is_harder():

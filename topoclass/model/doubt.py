@@ -1,4 +1,4 @@
-"""Probabilities that shrink with doubt: fade toward the class prior near the training edge.
+"""Probabilities that shrink with doubt: fade toward equal odds near the training edge.
 
 A classifier trained and calibrated on separable images gives every image the evidence
 ceiling, whether it sits in the middle of a training class or at the far edge of what was
@@ -14,15 +14,20 @@ probabilities too:
 where ``d`` is the image's unfamiliarity (its largest graded novelty score, see
 :meth:`topoclass.model.TrainedModel.assess`; 1 is the threshold at which it is called
 unfamiliar), ``K`` the number of classes, ``d0`` the ``start`` quantile of the training
-images' out-of-fold unfamiliarity and ``a`` (``at_threshold``, default 0.5) the weight left at
+images' out-of-fold unfamiliarity and ``a`` (``at_threshold``, default 0.8) the weight left at
 the threshold. An image as typical as most training images keeps its probabilities; toward the
-edge of the training set they fade linearly toward equal odds, to half weight at the threshold;
+edge of the training set they fade linearly toward equal odds, to ``a`` at the threshold;
 beyond it they keep fading with the square of the distance, down to ``floor`` (0.02), so a
 photograph of something else gets next to equal odds. The target is equal odds rather than the
 class shares of the labelled set, because those shares are the lab's choice of what to label,
 and because mixing with a constant vector keeps the ranking of the classes: the top class never
 changes, only how sure the numbers are (the same uniform mixing as the evidence limit,
 :func:`topoclass.model.limit_by_evidence`).
+
+The fade is gentle on purpose: it is the review band (:mod:`topoclass.model.conformal`),
+fitted on the faded out-of-fold probabilities, that turns a faded answer into ``review`` or
+``unfamiliar``; the fade itself only keeps the reported confidence from claiming the ceiling
+for an image at the edge of what was labelled.
 
 The fade is a rule, not a fit: with separable training data there are no errors to fit how
 fast confidence should fall, and a fit would choose "never". Its effect on images harder than
@@ -54,7 +59,7 @@ class DoubtFade:
         Unfamiliarity at which the fade begins (below 1).
     """
 
-    def __init__(self, start: float = 0.9, at_threshold: float = 0.5, floor: float = 0.02):
+    def __init__(self, start: float = 0.9, at_threshold: float = 0.8, floor: float = 0.02):
         self.start = start
         self.at_threshold = at_threshold
         self.floor = floor
