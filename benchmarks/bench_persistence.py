@@ -40,39 +40,6 @@ from topoclass.synth import hexagonal_lattice  # noqa: E402
 SPACING = 10.0
 JITTER = 0.08
 
-# Measurements made once while building the stage (not re-run by main()); kept with the results.
-NOTES = """
-## Notes (measured once during development, same machine)
-
-- **Where the time goes** (CPU us per site at 3k -> 99k sites): radius graph 2.6 -> 2.6,
-  H0 MST 1.9 -> 1.9, ripser on the sparse graph 21.6 -> 36.0, birth edges from the cocycles
-  1.0 -> 1.3, Delaunay (order measures) 4.6 -> 8.3. The growth is inside the ripser and
-  qhull libraries (probably their hash maps and working sets outgrowing the caches; not
-  profiled inside the C++); reordering the sites along a Morton curve did not help (1.5 s vs
-  1.5 s at 11k sites, wall, loaded machine), so it was left out. The slope goal is met; the
-  time per site is not flat (it roughly doubles from 1k to 100k sites).
-- **H0 path, before/after**: H0 first came from the MST of the Delaunay graph for every cloud
-  (qhull ~1.2 s CPU at 125k sites); now the MST of the radius graph already built for ripser is
-  used when that graph is connected (exact: an edge longer than `max_scale` closes a cycle of
-  shorter ones), and Delaunay only when it is not. No whole-stage timing was taken before the
-  change; the saving is the qhull call measured alone. Two runs after it gave 4.1 s and 5.0 s
-  CPU for `pattern_persistence` at 99k sites: run-to-run noise on this shared 2-CPU machine
-  (load average 3-8 during the runs) is of that size.
-- **Border handling, crop-size agreement** (one jittered lattice, jitter 0.1, 180 x 180
-  spacings cut into windows of 30, 45, 60 spacings; deviation of the 30 / 45 windows from the
-  60 windows in H0 length mean, H0 length variance, H1 count per site, H1 length sum per site):
-  default (bars charged to the Voronoi cell of their edge midpoint, kept for inner sites =
-  non-border sites >= 1 spacing from every border site): 30: +0.1 %, +1.6 %, -0.7 %, -2.2 %;
-  45: 0.0 %, +0.3 %, -0.6 %, -0.6 %. Guard 0: 30: -1.8 % / -3.5 % (H1 count / sum). No
-  border exclusion: 30: +2.8 % variance, -4.3 % / -5.9 % (H1 count / sum). Keeping only bars
-  whose edge has both ends inner (the first design) undercounts per site by the perimeter:
-  -4.4 % / -6.0 % at 30 spacings.
-- **H1 is not strictly local**: bars whose birth edge lies 4-7 spacings inside a 30-spacing
-  window can get different deaths than the same edge in the full 180-spacing cloud (the pairing
-  of a new loop with the older of the two regions it splits depends on regions that can be
-  large), up to 0.06 spacing; the per-site H1 length sum of small windows is therefore a
-  couple of per cent low whatever the border rule. Large windows are better.
-"""
 MAX_SCALE = 2.5
 
 
@@ -233,7 +200,6 @@ def main() -> None:
         + ("met" if max(rss["peak_rss_mb"], rss["ru_maxrss_mb"]) <= 1024 else "MISSED") + ".",
         "",
     ]
-    lines += ["", NOTES.strip(), ""]
     out = Path(__file__).with_name("RESULTS_persistence.md")
     out.write_text("\n".join(lines))
     print(f"wrote {out}")

@@ -1,4 +1,4 @@
-"""Speed and accuracy of the site finder; appends the figures to benchmarks/RESULTS_sites.md.
+"""Speed and accuracy of the site finder; rewrites benchmarks/RESULTS_sites.md with this run.
 
 Speed: find_sites on an invented 2048 x 2048 uint16 micrograph (spacing 12 px, about 33 000
 pores), best of 3, one thread (threadpoolctl limits BLAS; scipy.ndimage and cKDTree run on one
@@ -138,11 +138,10 @@ def main() -> None:
         "0.3 spacing for sites at least one spacing inside the frame. \"refused\" = "
         "PatternError (features not above the noise).\n\n")
     print(body)
-    with RESULTS.open("a", encoding="utf-8") as fh:
-        if RESULTS.stat().st_size == 0:
-            fh.write("# Site finder: speed and accuracy\n\nWritten by "
-                     "`python benchmarks/bench_sites.py`; newest entries last.\n\n")
-        fh.write(head + body)
+    # One run per file: earlier runs are in the git history, not appended here.
+    RESULTS.write_text("# Site finder: speed and accuracy\n\nWritten by "
+                       "`python benchmarks/bench_sites.py`; do not edit by hand.\n\n"
+                       + head + body, encoding="utf-8")
 
 
 if __name__ == "__main__":

@@ -92,63 +92,20 @@ SCALING_JITTER = 0.05  # spacings
 MAX_SCALE = 2.5  # spacings; topoclass.features.FeatureSettings().max_scale
 RTOL = 1e-9
 
-# Measured by hand (not re-run by main()) and kept with the results: the hot spots found for the
-# goals, what was changed, and the before/after of the change.
+# Why two goals are missed, in words only: every figure in RESULTS.md comes from the run that
+# wrote it; the profiling history (before/after of each change) lives in the git log.
 NOTES = """
-**Hot spots fixed for `featurize_vs_floor`** (profiled with cProfile and pyinstrument, one
-thread). Before/after on the 1 MP image of the goal (8,489 sites), measured on 2026-12-02 on
-this machine: commit 587f7ff against the commit that made the changes, 4 interleaved processes
-each, best of 7 runs (wall) or 5 (CPU per stage) in each:
+**Why `featurize_vs_floor` is missed.** The floor is one Gaussian filter, a few passes over a
+megapixel. The chain has to find every site and compute the exact Vietoris–Rips H1 of all site
+pairs closer than the radius limit, and ripser alone on exactly that input takes several times
+the floor (measured in every run: "ripser's H1 alone" under "End-to-end features against the
+floor"). Meeting the goal would take an H1 algorithm several times faster than ripser on the
+same complex, or an approximate H1; neither is worth the risk to the features, so the goal is
+kept as written and reported as missed.
 
-| 1 MP image | before | after |
-| --- | --- | --- |
-| features end to end (wall) | 377 ms | 307 ms |
-| ratio to the floor | 14.1 | 10.9 |
-| `find_sites` (CPU) | 80 ms | 70 ms |
-| `pattern_persistence` (CPU; after: with the shared triangulation) | 232 ms | 220 ms |
-| `order_measures` (CPU) | 39 ms | 8 ms |
-
-- The Delaunay triangulation was built twice per image (death-edge ties in persistence, and the
-  order measures), ~33 ms each: `SitePattern.delaunay` now builds it once, for both stages.
-- Auto polarity searched the candidate sites of both polarities on a central tile and then
-  searched the winner again on the whole band; when the tile is the whole (block-averaged)
-  band, as for a 1 MP image, the winner's candidates are reused.
-- `order_measures` queried the nearest-neighbour distances twice (Clark–Evans did it again).
-- Persistence sorted the radius graph for ripser, which sorts its COO input itself; and shared
-  out tied death edges in a Python loop over tied values. Lengths that round to the same
-  float32 grow with the square of the number of edges, so the loop grew too; it is vectorised.
-  At 105k sites (with border exclusion) `rips_persistence` went from 5.3 s to 4.9 s CPU (best
-  of 2 interleaved processes x 2 runs); ripser itself takes ~3.2 s of that.
-
-**Why `featurize_vs_floor` is still missed, and stays missed with this design.** The floor is
-one Gaussian filter: a few passes over a megapixel. The chain has to find ~8,500 sites and
-compute the exact Vietoris–Rips H1 of their ~75,000 pairs closer than 2.5 spacings, and ripser
-alone on exactly that input takes about 5x the floor (the harness measures it on every run:
-"ripser's H1 alone" under "End-to-end features against the floor"); site finding adds ~2.5x
-and the triangulation ~1x. What was tried to shrink ripser's part:
-- An exact edge collapse of the flag filtration before the reduction (gudhi 3.13
-  `SimplexTree.collapse_edges`, in a scratch environment, not a dependency): 1, 3 and 10
-  iterations took the 74,931 edges to 47,922, 43,105 and 28,650, but collapse + expansion +
-  persistence cost 0.20-0.26 s against ripser's 0.16 s on the same sites.
-- A lower radius limit: ripser on the same sites costs 0.141 s (with cocycles) at 1.8 spacings
-  against 0.155 s at 2.5: most of its time is per edge and per site, not in the long edges, and
-  a lower limit would cut vacancy loops (they die at sqrt(3) ~ 1.73 spacings) into truncated
-  bars.
-- Dropping the cocycles (birth edges) saves ~0.02 s.
-Meeting 5x would take an H1 algorithm several times faster than ripser on the same complex, or
-an approximate H1; neither is worth the risk to the features. The goal is kept as written and
-reported as missed; the note of issue 6 proposes restating it.
-
-**jobs2_speedup.** Scoring predicts chunks of 16 images in one pass and ships one pipeline to
-the workers (jobs=1 went from ~4 s to ~2 s for 40 images); the parent's own CPU in a jobs=2
-run is ~0.17 s of the ~1.8 s. What caps the speed-up is the machine: measured with the
-workers' CPU times (/proc), the two workers spend 2.0-2.4 s CPU on the 40 images that one
-process does in 1.5-1.7 s, i.e. each of the two vCPUs of this KVM guest runs ~1.3x slower while
-the other is busy, and the harness's own capacity probe reads 1.5-1.9 free cores. The result
-is 1.5-1.8 from run to run; joblib batch_size=1 instead of "auto" was no better. The first
-jobs=2 call also pays for starting two workers that import topoclass, ripser and
-scikit-learn (~1 s each), which a 40-image batch does not amortise: hence the warm-pool figure
-for the goal and the cold one beside it.
+**What caps `jobs2_speedup`.** The two workers share a machine whose "free cores" probe (under
+"Batch scoring") reads below two when other jobs run; the first `jobs=2` call also starts two
+worker processes, which a short batch does not amortise (the cold-pool figure beside it).
 """
 
 
@@ -760,8 +717,7 @@ def results_markdown(results: dict) -> str:
         details_text(results),
     ]
     if NOTES.strip():
-        lines += ["## Before / after (measured once while building the harness)", "",
-                  NOTES.strip(), ""]
+        lines += ["## Goals missed: why", "", NOTES.strip(), ""]
     return "\n".join(lines)
 
 

@@ -20,9 +20,9 @@ def _count_extractions(monkeypatch) -> list:
     calls = []
     real = features.measure_image
 
-    def counting(path, settings=None):
+    def counting(path, settings=None, **options):
         calls.append(path)
-        return real(path, settings)
+        return real(path, settings, **options)
 
     monkeypatch.setattr(features, "measure_image", counting)
     return calls

@@ -93,6 +93,15 @@ def test_relative_to_the_sheet_not_the_working_directory(tmp_path, scans, monkey
     assert read_labels(path).images[0] == scans[0].resolve()
 
 
+def test_sheet_entry_is_relative_with_slashes_or_absolute_outside(tmp_path):
+    from topoclass.labels import sheet_entry
+
+    base = tmp_path / "training"
+    assert sheet_entry(base / "images" / "m0.tif", base) == "images/m0.tif"
+    outside = tmp_path / "other" / "m1.tif"
+    assert sheet_entry(outside, base) == outside.as_posix()
+
+
 def test_semicolon_separated_sheet(tmp_path, scans):
     # Spreadsheet programs in comma-decimal locales write ";" (common practice)
     labels = read_labels(_sheet(tmp_path, "image;label\nscans/m0.tif;a\nscans/m1.tif;b\n"))
@@ -213,6 +222,20 @@ def test_too_few_images_per_class_for_the_folds(tmp_path, scans):
         read_labels(path, n_folds=3)
     (problem,) = _problems(excinfo)
     assert "class 'b' has 2 images, fewer than the 3" in problem
+    assert "label 1 more image of 'b', or use --cv 2" in problem
+
+
+def test_with_two_folds_the_advice_is_to_label_more(tmp_path, scans):
+    # Two folds is the least there is: the advice must not be "use fewer folds".
+    text = "image,label,group\n" + "".join(
+        f"scans/m{i}.tif,{'a' if i < 4 else 'b'},{'m' + str(i) if i < 4 else 'n'}\n"
+        for i in range(6))
+    with pytest.raises(LabelSheetError) as excinfo:
+        read_labels(_sheet(tmp_path, text), n_folds=2)
+    (problem,) = _problems(excinfo)
+    assert "class 'b' has 1 group, fewer than the 2" in problem
+    assert "label images of 1 more sample (groups) of 'b'" in problem
+    assert "fewer folds cannot help" in problem and "use --cv" not in problem
 
 
 def test_too_few_groups_per_class_for_the_folds(tmp_path, scans):

@@ -159,3 +159,131 @@ def test_rimmed_pores_count_once():
     back, _ = cKDTree(xy).query(pattern.xy[~pattern.border])
     assert np.mean(back < 3.0) >= 0.98  # no ring of bright candidates
     assert abs(pattern.spacing - 14.0) < 0.3
+
+
+# --------------------------------------------------------------------------------------------
+# the region through the pipeline: records, scores.csv, inspect, the command line
+
+
+@pytest.fixture(scope="module")
+def exported_file(tmp_path_factory):
+    """An invented micrograph exported with a data bar, as an 8-bit PNG."""
+    from topoclass.synth import _write_png8
+
+    micrograph, _ = make_micrograph("vacancies", size=256, seed=21)
+    exported, boundary = add_data_bar(micrograph, polarity="dark", seed=22)
+    path = tmp_path_factory.mktemp("export") / "line_A_0001.png"
+    _write_png8(path, exported)
+    return path, boundary
+
+
+def test_record_says_what_was_left_out(exported_file):
+    from topoclass.features import FeatureSettings, measure_image
+
+    path, boundary = exported_file
+    measured = measure_image(path)
+    x0, y0, x1, y1 = measured.record.region
+    assert (x0, y0, x1) == (0, 0, 256) and abs(y1 - boundary) <= 3
+    assert (measured.pattern.xy[:, 1] < boundary).all()
+    assert any("data bar" in r for r in measured.record.remarks)
+    whole = measure_image(path, FeatureSettings(auto_region=False))
+    assert whole.record.region == (0, 0, 256, whole.micrograph.image.shape[0])
+    assert whole.record.remarks == ()
+    given = measure_image(path, FeatureSettings(region=(0, 0, 1, 0.5), auto_region=False))
+    assert given.record.region == (0, 0, 256, int(np.ceil(0.5 * _image_rows(path))))
+
+
+def _image_rows(path) -> int:
+    from topoclass.images import read_micrograph
+
+    return read_micrograph(path).image.shape[0]
+
+
+def test_inspect_json_and_overlay_show_the_region(exported_file, tmp_path, monkeypatch, capsys):
+    import json
+    import sys
+
+    from topoclass.cli import main
+
+    path, boundary = exported_file
+    monkeypatch.setattr(sys, "argv", ["topoclass", "inspect", str(path), "--json",
+                                      "--out", str(tmp_path / "inspect")])
+    main()
+    summary = json.loads(capsys.readouterr().out)
+    assert abs(summary["analysed_region"][3] - boundary) <= 3
+    assert "data bar" in summary["left_out"]
+    assert summary["preferred_spacing"] is True
+    saved = json.loads((tmp_path / "inspect" / "summary.json").read_text())
+    assert saved["analysed_region"] == summary["analysed_region"]
+    # The overlay darkens the band that was left out.
+    from PIL import Image
+
+    overlay = np.asarray(Image.open(tmp_path / "inspect" / "overlay.png").convert("L"))
+    assert overlay.shape[0] > overlay.shape[1]  # the band is drawn, below the micrograph
+
+
+def test_bad_region_option_is_one_line(exported_file, monkeypatch, capsys):
+    import sys
+
+    from topoclass.cli import main
+
+    path, _ = exported_file
+    monkeypatch.setattr(sys, "argv", ["topoclass", "inspect", str(path), "--region", "1,2,3"])
+    with pytest.raises(SystemExit) as info:
+        main()
+    assert info.value.code == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--region" in err[0]
+
+
+def test_scores_csv_records_the_analysed_region(exported_file, small_model, tmp_path):
+    from topoclass.scoring import read_scores, score_images
+
+    path, boundary = exported_file
+    out = tmp_path / "scores.csv"
+    score_images(small_model.model, [path], out, cache_dir=False)
+    (row,) = read_scores(out)
+    assert row["status"] == "ok"
+    x0, y0, x1, y1 = (int(v) for v in row["analysed_region"].split(","))
+    assert abs(y1 - boundary) <= 3
+    assert "left out: data bar" in row["message"]
+
+
+# --------------------------------------------------------------------------------------------
+# rescaled copies (augment)
+
+
+def test_zoomed_copy_scales_the_spacing():
+    # Rescaling an image by f multiplies every length in it by f (elementary geometry).
+    from topoclass.augment import parse_zoom_range, zoom_factors, zoom_image
+
+    image, truth = make_micrograph("ordered", size=256, seed=4)
+    base = find_sites(image).spacing
+    for factor in (0.7, 1.6):
+        copy = zoom_image(image, factor)
+        assert copy.shape == (round(256 * factor),) * 2
+        assert abs(find_sites(copy).spacing / base - factor) < 0.02 * factor
+    np.testing.assert_allclose(zoom_factors((0.5, 2.0), 3), [0.5, 2.0])  # 1.0 is the original
+    assert parse_zoom_range("1,2") == (1.0, 2.0)
+    for bad in ("2,1", "0.01,2", "x"):
+        with pytest.raises(TopoclassError, match="--zoom-range"):
+            parse_zoom_range(bad)
+
+
+def test_training_with_zoom_range_records_it_and_widens_the_spacing_range(
+        small_dataset, feature_cache, small_model, tmp_path):
+    from topoclass.workflow import train_from_labels
+
+    run = train_from_labels(small_dataset, tmp_path / "zoomed", cv=3, seed=3,
+                            cache_dir=feature_cache, figures=False, zoom_range=(1.0, 1.6),
+                            zoom_copies=2)
+    settings = run.model.settings
+    assert settings["augmentation"]["zoom_factors"] == [1.6]
+    assert settings["augmentation"]["copies_measured"] == 24
+    plain = small_model.model.settings["spacing_px_range"]
+    lo, hi = settings["spacing_px_range"]
+    assert lo == pytest.approx(plain[0]) and hi > 1.5 * plain[1]
+    import json
+
+    card = json.loads((run.directory / "card.json").read_text())
+    assert card["settings"]["augmentation"]["zoom_range"] == [1.0, 1.6]

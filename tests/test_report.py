@@ -64,6 +64,14 @@ def test_overlay_colours_each_site_by_its_delaunay_coordination(vacancy, tmp_pat
     assert np.mean(np.ptp(grey, axis=2) > 30) > 0.05
 
 
+def test_coordination_class_names_the_overlay_colour_of_each_count():
+    # A site with 6 Delaunay neighbours is the ideal of a triangular lattice; 5 and 7 are the
+    # usual disclination pair and 4 or fewer, 8 or more are lumped (common practice).
+    keys = report.coordination_class(np.array([2, 4, 5, 6, 7, 8, 11]))
+    assert keys.tolist() == ["≤4", "≤4", "5", "6", "7", "≥8", "≥8"]
+    assert set(keys) <= set(report.COORDINATION_COLOURS)
+
+
 def test_overlay_draws_border_sites_hollow(vacancy, tmp_path):
     image, _, _, pattern = vacancy
     report.save_figure(report.plot_sites(image, pattern), tmp_path / "overlay.png")
@@ -381,6 +389,59 @@ def test_grouped_importance_permutes_a_family_together():
     np.testing.assert_allclose(ours["importances"], ref.importances, rtol=1e-9, atol=1e-12)
 
 
+def _label_copied_into_one_family(seed=0):
+    """60 images in 20 sample groups of 3; family ``psi6_*`` is a noisy one-hot copy of the
+    label, two other families are pure noise. The answer is known by construction."""
+    from sklearn.preprocessing import FunctionTransformer
+
+    rng = np.random.default_rng(seed)
+    classes = np.array(CLASSES)
+    groups = np.repeat(np.arange(20), 3)
+    y = classes[groups % 3]
+    onehot = (y[:, None] == classes[None, :]).astype(float)
+    X = np.hstack([onehot + 0.3 * rng.standard_normal((60, 3)),
+                   rng.standard_normal((60, 6))])
+    names = ["psi6_t0", "psi6_t1", "psi6_t2"] + [f"h1_pimage_b0.{k}0_p0.20" for k in range(3)] \
+        + [f"betti1_t{k}.00" for k in range(3)]
+    step = FunctionTransformer(feature_names_out=lambda *_: np.array(names, dtype=object))
+    return X, y, groups, step
+
+
+def test_importance_finds_the_family_that_holds_the_label():
+    # Known answer by construction: only the psi6 family carries the label. The shipped model's
+    # probabilities are bounded by limit_by_evidence, so no importance may exceed the log-loss
+    # of the bound, -log(1 / (K (n + 1))) (the bound of the probabilities, see its docstring).
+    from topoclass.model import train_model
+
+    X, y, groups, step = _label_copied_into_one_family()
+    model = train_model(X, y, groups, features=step, feature_set_name="known", cv=3, seed=0)
+    imp = report.feature_importance(model, X, y, groups=groups, n_repeats=8, seed=1,
+                                    grouped=True)
+    assert imp["names"] == ["psi6", "h1_pimage", "betti1"]
+    scores = dict(zip(imp["names"], imp["importances_mean"], strict=True))
+    label_family = scores["psi6"]
+    noise = [scores["h1_pimage"], scores["betti1"]]
+    assert label_family > 0.2
+    assert max(noise) < 0.05 and label_family > 5 * max(abs(v) for v in noise)
+    top = -np.log(1.0 / (3 * (60 + 1)))
+    assert imp["importances_max"].max() <= top - imp["baseline_log_loss"] + 1e-9
+    assert imp["across_groups"] and imp["importances"].shape[1] == 8
+
+
+def test_cross_group_permutation_never_keeps_a_value_within_its_group():
+    from topoclass.report.importance import _cross_group_permutation
+
+    rng = np.random.default_rng(3)
+    for _ in range(50):
+        sizes = rng.integers(1, 6, size=rng.integers(3, 12))
+        if sizes.max() * 2 > sizes.sum():
+            continue
+        groups = np.repeat(np.arange(sizes.shape[0]), sizes)
+        source = _cross_group_permutation(groups, rng)
+        np.testing.assert_array_equal(np.sort(source), np.arange(groups.shape[0]))
+        assert np.all(groups[source] != groups)
+
+
 def test_training_figures_of_a_fitted_model(tmp_path):
     from sklearn.datasets import load_iris
 
@@ -393,7 +454,8 @@ def test_training_figures_of_a_fitted_model(tmp_path):
     assert [p.name for p in paths] == ["cv_confusion.png", "cv_reliability.png",
                                        "cv_per_class.png", "importance.png", "importance.csv"]
     lines = (tmp_path / "importance.csv").read_text().splitlines()
-    assert lines[0] == "feature,importance_mean,importance_std" and len(lines) == 5
+    assert lines[0] == ("feature,importance_mean,importance_std,importance_min,importance_max,"
+                        "repeats") and len(lines) == 5
     # Petal measurements (x2, x3) separate the iris species (Fisher 1936; common knowledge).
     assert {lines[1].split(",")[0], lines[2].split(",")[0]} & {"x2", "x3"}
 
@@ -443,7 +505,7 @@ class _Page(HTMLParser):
 def test_batch_report_is_self_contained_and_complete(tmp_path):
     scores, rows = scores_fixture(tmp_path / "batch")
     out = report.write_batch_report(scores, details=2)
-    assert out == scores.with_name("report.html")
+    assert out == scores.with_name("scores.html")  # named after the CSV
     page = _Page()
     page.feed(out.read_text(encoding="utf-8"))
     text = " ".join(" ".join(page.text).split())
@@ -468,13 +530,14 @@ def test_batch_report_is_self_contained_and_complete(tmp_path):
         assert f"p {c}" in page.head_cells
     assert "psi6_global" in page.head_cells and "defect_fraction" in page.head_cells
     # Detail views: bounded (2 here), the unfamiliar image first, with real pictures.
-    details = [h for h in page.links if h.startswith("report_files/")]
+    details = [h for h in page.links if h.startswith("scores_files/")]
     assert len(set(details)) == 2 and "detail views for at most 2 images" in text.lower()
     first = out.parent / details[0]
     assert first.parent.name.startswith("00000-")
     for name in ("micrograph.jpg", "defects.csv"):
         assert (first.parent / name).is_file()
     detail = first.read_text()
+    assert out.name == "scores.html"
     assert f"../../{out.name}" in detail and (first.parent / f"../../{out.name}").resolve() == out
     assert detail.count("<svg") >= 4 and "micrograph.jpg" in detail
 
@@ -529,7 +592,35 @@ def test_batch_report_of_a_partly_written_file(tmp_path):
     page = _Page()
     page.feed(out.read_text())
     assert page.body_rows == len(rows) - 1  # the cut last line is ignored
-    assert not [h for h in page.links if h.startswith("report_files/")]
+    assert not [h for h in page.links if h.startswith("r_files/")]
+
+
+def test_two_batches_in_one_folder_keep_a_page_each(tmp_path):
+    first, _ = scores_fixture(tmp_path / "batch", n_ok=2)
+    second = first.with_name("line-B.csv")
+    second.write_text(first.read_text().replace("membrane_1", "membrane_0"))
+    page_a = report.write_batch_report(first, details=2)
+    page_b = report.write_batch_report(second, details=2)
+    assert (page_a.name, page_b.name) == ("scores.html", "line-B.html")
+    assert (tmp_path / "batch" / "scores_files").is_dir()
+    assert (tmp_path / "batch" / "line-B_files").is_dir()
+    assert "line-B_files/" not in page_a.read_text() and "scores_files/" not in page_b.read_text()
+    # An existing page is refused, as the CSV is, unless told to replace it.
+    before = page_a.read_bytes()
+    with pytest.raises(TopoclassError, match="--overwrite"):
+        report.write_batch_report(first)
+    assert page_a.read_bytes() == before
+    # Replacing it with fewer detail views leaves no detail folder the page does not link.
+    report.write_batch_report(first, details=1, overwrite=True)
+    linked = {h.split("/")[1] for h in _links(page_a) if h.startswith("scores_files/")}
+    assert {f.name for f in (tmp_path / "batch" / "scores_files").iterdir()} == linked
+    assert len(linked) == 1
+
+
+def _links(path: Path) -> list[str]:
+    page = _Page()
+    page.feed(path.read_text(encoding="utf-8"))
+    return page.links
 
 
 def test_batch_report_refuses_a_missing_or_foreign_csv(tmp_path):

@@ -68,7 +68,7 @@ def test_clicking_a_header_sorts_the_rows(browser, report_page):
 def test_detail_view_opens_with_its_pictures(browser, report_page):
     out, _ = report_page
     browser.get(out.resolve().as_uri())
-    link = browser.find_elements("css selector", "a[href^='report_files/']")[0]
+    link = browser.find_elements("css selector", "a[href^='scores_files/']")[0]
     browser.get(link.get_attribute("href"))
     # Two pictures layered over the one micrograph JPEG, and the diagram with two barcodes.
     boxes = browser.execute_script(

@@ -157,3 +157,46 @@ def test_two_batches_from_files_and_the_command(tmp_path):
                             str(tmp_path / "cli"), "--by", "shift_id"],
                            capture_output=True, text=True, env=env, timeout=120)
     assert wrong.returncode == 2 and len(wrong.stderr.strip().splitlines()) == 1
+
+
+def test_batch_report_charts_the_batch_with_limits_from_the_individuals_rule(tmp_path):
+    # Reference: the individuals-chart rule as published (Shewhart; Montgomery, Introduction to
+    # Statistical Quality Control): centre = mean, sigma = mean moving range / d2 with
+    # d2 = 1.128 for ranges of two (value from memory), limits centre ± 3 sigma. Computed here
+    # with numpy from the CSV, independently of topoclass.trend.
+    import re
+    import sys
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from _report_data import CLASSES, scores_fixture
+
+    from topoclass.report import write_batch_report
+
+    scores, rows = scores_fixture(tmp_path / "batch", n_ok=12)
+    page = write_batch_report(scores, details=0).read_text(encoding="utf-8")
+    svg = page[page.index("<svg"):page.index("</svg>")]
+    ok = [r for r in rows if r["status"] == "ok"]
+    assert svg.count("<circle") == len(CLASSES) * len(ok)
+    for c in CLASSES:
+        v = np.array([float(r[f"p_{c}"]) for r in ok])
+        centre, sigma = v.mean(), np.abs(np.diff(v)).mean() / 1.128
+        block = svg[svg.index(f">p_{c}<"):]
+        num = r"([-+.\de]+)"
+        shown = re.search(f"limits {num} – {num}, centre {num}<", block).groups()
+        np.testing.assert_allclose([float(x) for x in shown],
+                                   [centre - 3 * sigma, centre + 3 * sigma, centre], rtol=1e-3)
+    assert "first 12 images" in page
+
+
+def test_batch_report_says_why_a_small_batch_has_no_charts(tmp_path):
+    import sys
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from _report_data import scores_fixture
+
+    from topoclass.report import write_batch_report
+
+    scores, _ = scores_fixture(tmp_path / "batch", n_ok=4)
+    page = write_batch_report(scores, details=0).read_text(encoding="utf-8")
+    assert "<svg" not in page.split("id='trend'")[1][:400]
+    assert "4 scored images: control charts need at least 10" in page

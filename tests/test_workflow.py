@@ -51,7 +51,7 @@ def test_demo_quality_held_out_by_group(demo):
                    for r in rows.values())
     assert flagged <= 2 and demo.score_summary.unfamiliar == 1 + flagged + no_class
     assert demo.score_summary.failed == 1
-    assert (demo.scores.parent / "report.html").is_file()
+    assert (demo.scores.parent / "scores.html").is_file()
 
 
 def test_photo_of_something_else_is_flagged_unfamiliar(demo, tmp_path):

@@ -171,7 +171,7 @@ def spacing_and_density(pattern: SitePattern, tri: Triangulation) -> dict[str, f
     px = pattern.pixel_size_nm
     px = float(px) if px is not None and px > 0 else np.nan
     interior = ~pattern.border
-    rows, cols = pattern.shape
+    rows, cols = _frame_size(pattern)
     edge = _border_edge(pattern)
     width, height = max(cols - 1 - 2 * edge, 0.0), max(rows - 1 - 2 * edge, 0.0)
     area_um2 = width * height * (px * 1e-3) ** 2
@@ -406,9 +406,15 @@ def _in_zone(pattern: SitePattern, xy: np.ndarray) -> np.ndarray:
 
 
 def _zone_area(pattern: SitePattern) -> float:
-    rows, cols = pattern.shape
+    rows, cols = _frame_size(pattern)
     d = _ZONE_DEPTH * pattern.spacing
     return max(cols - 1 - 2 * d, 0.0) * max(rows - 1 - 2 * d, 0.0)
+
+
+def _frame_size(pattern: SitePattern) -> tuple[int, int]:
+    # The region the sites were searched in (a data bar left out holds none), not the image.
+    x0, y0, x1, y1 = pattern.frame
+    return y1 - y0, x1 - x0
 
 
 def _first_shell_bonds(pattern: SitePattern, tri: Triangulation) -> np.ndarray:

@@ -15,6 +15,11 @@ import typer
 from topoclass.errors import TopoclassError
 from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
 
+_REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of the frame, "
+                "e.g. 0,0,1,0.9); a data bar inside it is still found and left out.")
+_NO_AUTO_REGION_HELP = "Do not look for an instrument data bar to leave out."
+
+
 _FEATURE_HELP = "two-bar, order, topology or all"
 _ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
                "true class for at most this share of images like the training set.")
@@ -52,7 +57,10 @@ def main() -> None:
     # With no arguments at all the help is what a new user needs, not an error.
     args = sys.argv[1:] or ["--help"]
     try:
-        app(args=args, prog_name="topoclass", standalone_mode=False)
+        # Outside standalone mode typer returns the code of a `typer.Exit` instead of exiting.
+        code = app(args=args, prog_name="topoclass", standalone_mode=False)
+        if isinstance(code, int) and code:
+            sys.exit(code)
     except TopoclassError as exc:
         typer.echo(f"error: {_one_line(exc)}", err=True)
         sys.exit(2)
@@ -83,13 +91,22 @@ def inspect(
     ),
     max_pixels: int = typer.Option(100_000_000, "--max-pixels", min=1,
                                    help="Refuse larger images (decompression-bomb guard)."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    model_dir: Path | None = typer.Option(
+        None, "--model", help="Also list the three training images of this model nearest to "
+        "the image (measured with the model's own settings)."),
 ) -> None:
     """Find the lattice sites of one micrograph and report its order measures."""
     from topoclass.features import FeatureSettings
     from topoclass.inspection import inspect_image
 
-    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels)
-    summary = inspect_image(image, out=out, settings=settings)
+    settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size, max_pixels=max_pixels,
+                               **_region_options(region, no_auto_region))
+    trained = None
+    if model_dir is not None:
+        settings, trained = _model_settings(model_dir, max_pixels)
+    summary = inspect_image(image, out=out, settings=settings, model=trained)
     if as_json:
         typer.echo(json.dumps(summary, sort_keys=False))
         return
@@ -129,16 +146,28 @@ def train(
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     alpha: float = typer.Option(0.05, "--alpha", help=_ALPHA_HELP),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    zoom_range: str | None = typer.Option(
+        None, "--zoom-range", help="Also train on rescaled copies of every image at zoom "
+        "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
+    zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
+                                    help="Rescaled copies per image with --zoom-range."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace the model already in "
+                                   "--model (all its files, the validation report too)."),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
+    from topoclass.augment import parse_zoom_range
     from topoclass.features import FeatureSettings
     from topoclass.workflow import train_from_labels
 
+    settings = FeatureSettings(polarity=polarity, **_region_options(region, no_auto_region))
     run = train_from_labels(
         labels, model, feature_set=features, classifier=classifier, cv=cv,
         calibration=calibration, seed=seed, select=select,
-        settings=FeatureSettings(polarity=polarity), jobs=jobs, cache_dir=cache, progress=True,
-        alpha=alpha,
+        settings=settings, jobs=jobs, cache_dir=cache, progress=True,
+        alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
+        overwrite=overwrite,
     )
     _echo_failures(run.failures)
     if run.comparison:
@@ -153,13 +182,20 @@ def validate(
                             help="Model folder written by `topoclass train`."),
     labels: Path = typer.Argument(..., metavar="LABELS",
                             help="Held-out label sheet or class folders."),
+    out: Path | None = typer.Option(None, "--out", help="Folder for validation.md and its "
+                                    "figures (default: the model folder)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers for features."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
 ) -> None:
     """Measure a trained model on a held-out labelled set."""
     from topoclass.workflow import validate_from_labels
 
-    run = validate_from_labels(model_dir, labels, jobs=jobs, cache_dir=cache, progress=True)
+    run = validate_from_labels(model_dir, labels, out=out, jobs=jobs, cache_dir=cache,
+                               progress=True,
+                               overrides=_region_options(region, no_auto_region))
     _echo_failures(run.failures)
     m = run.metrics
     typer.echo(f"held-out images {m['n_samples']}: accuracy {m['accuracy']:.3f}, "
@@ -179,25 +215,43 @@ def score(
     out: Path = typer.Option(..., "--out", help="Results CSV (one row per image)."),
     jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
     resume: bool = typer.Option(False, "--resume", help="Keep finished rows; score the rest."),
-    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing output "
+                                   "(the CSV and its report page)."),
+    strict: bool = typer.Option(False, "--strict", help="Exit with code 1 if any image failed."),
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
     max_pixels: int | None = typer.Option(None, "--max-pixels", min=1,
                                           help="Refuse larger images (default 100 megapixels)."),
+    store: str | None = typer.Option(None, "--store", help="Also write every row to a results "
+                                     "store: a SQLite file or a postgresql:// URL."),
+    note: str = typer.Option("", "--note", help="Operator note kept with the batch in the "
+                             "store."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    region: str | None = typer.Option(None, "--region", help=_REGION_HELP
+                                      + " Default: the model's."),
+    no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
     details: int = typer.Option(200, "--details", min=0, help="Detail views in the report for "
                                 "at most this many images, the most doubtful first."),
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
                                    "report` makes the page later)."),
 ) -> None:
-    """Score micrographs in batch with a probability for each class."""
+    """Score micrographs in batch with a probability for each class.
+
+    The last line printed is `failed: F of N`, for scripts.
+    """
     import dataclasses
 
     from topoclass.features import FeatureSettings
     from topoclass.images import collect_image_paths
     from topoclass.model import load_model
+    from topoclass.report import batch_report_paths, write_batch_report
     from topoclass.scoring import score_images, summary_text
 
+    page, _ = batch_report_paths(out)
+    if page.exists() and not (resume or overwrite):
+        # Refused before any work, like the CSV itself; --resume continues the same batch.
+        raise TopoclassError(f"{page}: the report page exists; pass --overwrite to replace it, "
+                             "--resume to continue its batch, or give --out another name")
     trained = load_model(model_dir)
     paths = collect_image_paths(inputs)
     if not paths:
@@ -206,26 +260,74 @@ def score(
     settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
+    settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
+    recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
+                                              len(paths), note, alpha)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
-                           overwrite=overwrite, cache_dir=cache, progress=True, alpha=alpha)
+                           overwrite=overwrite, cache_dir=cache, progress=True,
+                           recorder=recorder, alpha=alpha)
+    if recorder is not None:
+        recorder.store.close()
     typer.echo(summary_text(summary))
-    from topoclass.report import write_batch_report
-
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
-                                  cache_dir=cache, progress=True)
+                                  cache_dir=cache, overwrite=True, progress=True)
         typer.echo(f"report: {page}")
-    if summary.scored == 0 and summary.skipped == 0:
-        raise TopoclassError(f"{out}: none of the {len(paths)} images could be scored; "
+    typer.echo(f"failed: {summary.total_failed} of {summary.given}")
+    if summary.total_failed == summary.given:
+        raise TopoclassError(f"{out}: none of the {summary.given} images could be scored; "
                              "see the message column")
+    if store_problem is not None or summary.store_error is not None:
+        from topoclass.errors import StoreError
+
+        raise StoreError(f"{store_problem or summary.store_error} (every row is in {out})")
+    if strict and summary.total_failed:
+        raise typer.Exit(1)
+
+
+def _batch_recorder(store, model_dir, trained, settings, out, n_images, note, alpha):
+    """Open the store and start the batch; a store that cannot be used does not stop scoring."""
+    if store is None:
+        return None, None
+    from topoclass.errors import StoreError
+    from topoclass.store import model_sha256, open_store
+
+    try:
+        opened = open_store(store)
+    except StoreError as exc:
+        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        return None, exc
+    try:
+        recorder = opened.start_batch(
+            model_sha256=model_sha256(model_dir), model_path=str(Path(model_dir).absolute()),
+            classes=[str(c) for c in trained.classes], settings=settings,
+            output_csv=str(Path(out).absolute()), n_images=n_images, note=note,
+            # The verdicts' error rate: the one asked for, else the model's own band's.
+            review_alpha=alpha if alpha is not None
+            else getattr(getattr(trained, "review_band", None), "alpha_", None))
+    except StoreError as exc:
+        opened.close()
+        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        return None, exc
+    return recorder, None
 
 
 @app.command()
 def report(
-    scores_csv: Path = typer.Argument(..., metavar="SCORES_CSV",
-                            help="Results CSV written by `topoclass score`."),
-    out: Path | None = typer.Option(None, "--out", help="HTML file (default: report.html "
-                                    "beside the CSV)."),
+    scores_csv: Path | None = typer.Argument(None, metavar="[SCORES_CSV]",
+                                             help="Results CSV written by `topoclass score` "
+                                             "(or use --store)."),
+    out: Path | None = typer.Option(None, "--out", help="HTML file (default: the CSV's name "
+                                    "with .html, e.g. scores.html)."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing page."),
+    store: str | None = typer.Option(None, "--store", help="Build the page from a results "
+                                     "store instead of a CSV (see --batch, --since, "
+                                     "--model-hash)."),
+    batch: int | None = typer.Option(None, "--batch", help="With --store: this batch only."),
+    since: str | None = typer.Option(None, "--since", help="With --store: rows scored since "
+                                     "this date (YYYY-MM-DD)."),
+    model_hash: str | None = typer.Option(None, "--model-hash", help="With --store: rows of "
+                                          "the model whose hash starts so."),
     model_dir: Path | None = typer.Option(None, "--model", help="Model folder, for the "
                                           "site-finding settings of the detail views."),
     details: int = typer.Option(200, "--details", min=0, help="Detail views for at most this "
@@ -239,8 +341,16 @@ def report(
     from topoclass.report import write_batch_report
 
     trained = load_model(model_dir) if model_dir is not None else None
+    if store is not None:
+        if scores_csv is not None:
+            raise TopoclassError(f"report takes a scores CSV ({scores_csv}) or --store "
+                                 f"{store}, not both; give one of them")
+        out = out if out is not None else Path("report.html")
+        scores_csv = _scores_from_store(store, out, batch, since, model_hash)
+    elif scores_csv is None:
+        raise TopoclassError("report needs a scores CSV or --store STORE; give one of them")
     path = write_batch_report(scores_csv, out, model=trained, details=details, jobs=jobs,
-                              cache_dir=cache, progress=True)
+                              cache_dir=cache, overwrite=overwrite, progress=True)
     typer.echo(f"report: {path}")
 
 
@@ -251,6 +361,7 @@ def demo(
     jobs: int = typer.Option(2, "--jobs", min=1, help="Parallel workers."),
 ) -> None:
     """Run the whole job on invented anodic-alumina micrographs."""
+    from topoclass.report import batch_report_paths
     from topoclass.scoring import summary_text
     from topoclass.workflow import run_demo
 
@@ -265,7 +376,7 @@ def demo(
     typer.echo(f"CV report:  {run.training.directory / 'cv_report.md'}")
     typer.echo(f"validation: {run.validation.report}")
     typer.echo(f"scores:     {run.scores}")
-    report = run.scores.parent / "report.html"
+    report, _ = batch_report_paths(run.scores)
     if report.exists():
         typer.echo(f"report:     {report}")
 
@@ -325,11 +436,11 @@ def suggest(
             typer.echo(str(path))
 
 
-
 @app.command()
 def trend(
-    scores_csv: list[Path] = typer.Argument(..., help="scores.csv files, one per batch, in "
-                                            "acquisition order."),
+    scores_csv: list[Path] | None = typer.Argument(None, metavar="[SCORES_CSV]...",
+                                                   help="scores.csv files, one per batch, in "
+                                                   "acquisition order (or use --store)."),
     out: Path = typer.Option(..., "--out", help="Folder for trend.png, trend.csv and limits."),
     by: str | None = typer.Option(None, "--by", help="Order by this column (times or numbers), "
                                   "or file-time for the image files' times; default: as read."),
@@ -339,6 +450,14 @@ def trend(
                                  "first this many images set the limits."),
     charts: str | None = typer.Option(None, "--charts", help="Comma-separated columns to "
                                       "chart (default: amounts, then class probabilities)."),
+    store: str | None = typer.Option(None, "--store", help="Chart the rows of a results store "
+                                     "(in the order they were stored) instead of CSV files."),
+    since: str | None = typer.Option(None, "--since", help="With --store: rows scored since "
+                                     "this date (YYYY-MM-DD, UTC)."),
+    model_hash: str | None = typer.Option(None, "--model-hash", help="With --store: rows of "
+                                          "the model whose hash starts so."),
+    reference_batch: int | None = typer.Option(None, "--reference-batch", help="With --store: "
+                                               "the stored batch whose images set the limits."),
 ) -> None:
     """Chart amounts and class probabilities over a run, with control limits and run rules."""
     from topoclass.scoring import CAUTION
@@ -349,8 +468,18 @@ def trend(
         write_trend,
     )
 
-    table = read_score_tables(scores_csv)
-    ref = read_score_tables([reference]) if reference is not None else None
+    if store is not None:
+        if scores_csv:
+            raise TopoclassError(f"trend takes scores CSV files or --store {store}, not both; "
+                                 "give one of them")
+        table, ref = _trend_rows_from_store(store, since, model_hash, reference_batch)
+        if reference is not None:
+            ref = read_score_tables([reference])
+    elif not scores_csv:
+        raise TopoclassError("trend needs scores CSV files or --store STORE; give one of them")
+    else:
+        table = read_score_tables(scores_csv)
+        ref = read_score_tables([reference]) if reference is not None else None
     chosen = [c.strip() for c in charts.split(",") if c.strip()] if charts else None
     result = trend_table(table, charts=chosen, by=by, reference=ref, baseline=baseline)
     paths = write_trend(result, out)
@@ -366,6 +495,123 @@ def trend(
     typer.echo("")
     typer.echo("Caution: " + TREND_CAUTION + " " + CAUTION)
 
+
+store_app = typer.Typer(no_args_is_help=True, help="Query the results store of many batches.")
+app.add_typer(store_app, name="store")
+
+
+@store_app.command("export")
+def store_export(
+    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    out: Path = typer.Option(..., "--out", help="File to write: .csv or .parquet."),
+    since: str | None = typer.Option(None, "--since", help="Rows scored since this date "
+                                     "(YYYY-MM-DD, UTC)."),
+    model_hash: str | None = typer.Option(None, "--model", help="Rows of the model whose hash "
+                                          "starts so (see `topoclass store batches`)."),
+    batch: int | None = typer.Option(None, "--batch", help="Rows of this batch only."),
+) -> None:
+    """Write stored results, one row per scored image, to a CSV or Parquet file."""
+    from topoclass.store import export_results, open_store, parse_since
+
+    when = parse_since(since)
+    with open_store(store) as opened:
+        n = export_results(opened, out, since=when, model=model_hash, batch=batch)
+    typer.echo(f"exported {n} rows to {out}")
+
+
+@store_app.command("batches")
+def store_batches(
+    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    last: int = typer.Option(20, "--last", min=1, help="Show this many newest batches."),
+) -> None:
+    """List the batches in a store, newest first."""
+    from topoclass.store import open_store
+
+    with open_store(store) as opened:
+        frame = opened.batches().head(last)
+    if frame.empty:
+        typer.echo(f"{opened.name}: no batches yet")
+        return
+    typer.echo(f"{'batch':>5}  {'started (UTC)':<19}  {'model':<12} {'rows':>6} {'failed':>6}"
+               f"  {'host':<16} note")
+    import pandas as pd
+
+    for r in frame.to_dict("records"):
+        started = r["started_utc"].strftime("%Y-%m-%d %H:%M:%S")
+        failed = "" if pd.isna(r["n_failed"]) else int(r["n_failed"])
+        state = " (unfinished)" if pd.isna(r["finished_utc"]) else ""
+        typer.echo(f"{r['batch']:>5}  {started:<19}  {r['model_sha256'][:12]:<12} "
+                   f"{r['rows']:>6} {failed:>6}  {r['host'][:16]:<16} {r['note']}{state}")
+
+
+def _trend_rows_from_store(store, since, model_hash, reference_batch):
+    """The stored rows to chart, and those of the reference batch (None without one)."""
+    from topoclass.store import open_store, parse_since
+
+    with open_store(store) as opened:
+        table = opened.results(since=parse_since(since), model=model_hash)
+        ref = None if reference_batch is None else opened.results(batch=reference_batch)
+    if table.empty:
+        raise TopoclassError(f"{opened.name}: no stored rows match; `topoclass store batches` "
+                             "lists what it holds")
+    if ref is not None and ref.empty:
+        raise TopoclassError(f"{opened.name}: batch {reference_batch} holds no rows; "
+                             "`topoclass store batches` lists the batches")
+    return table, ref
+
+
+def _scores_from_store(store, page: Path, batch, since, model_hash) -> Path:
+    """Query the store into a scores CSV beside the page, for the batch report."""
+    from topoclass.store import open_store, parse_since, write_scores_csv
+
+    target = page.with_name(page.stem + "_scores.csv")
+    with open_store(store) as opened:
+        n = write_scores_csv(opened, target, batch=batch, since=parse_since(since),
+                             model=model_hash)
+    if n == 0:
+        raise TopoclassError(f"{opened.name}: no stored rows match; `topoclass store batches` "
+                             "lists what it holds")
+    typer.echo(f"{n} rows from {opened.name} written to {target}")
+    return target
+
+
+@app.command("map")
+def map_command(
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR",
+                            help="Model folder written by `topoclass train`."),
+    image: Path = typer.Argument(..., metavar="IMAGE",
+                            help="Large micrograph (TIFF read in pieces; PNG/JPEG whole)."),
+    out: Path = typer.Option(..., "--out", help="Folder for tiles.csv, totals.csv, map.png "
+                             "and map.html."),
+    tile: int | None = typer.Option(None, "--tile", min=32, help="Tile side in pixels "
+                                    "(default: as many sites as a training image)."),
+    overlap: float = typer.Option(3.0, "--overlap", min=0.0, help="Overlap of neighbouring "
+                                  "tiles, in lattice spacings."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished tiles; map the rest."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing map."),
+    memory_limit: float = typer.Option(1500, "--memory-limit", min=1, help="MB a file that "
+                                       "cannot be read in pieces may take to read whole."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
+) -> None:
+    """Map where each class sits on a large micrograph, tile by tile."""
+    from topoclass.mapping import map_image, map_summary_text
+    from topoclass.model import load_model
+    from topoclass.report.map_view import write_map_views
+
+    trained = load_model(model_dir)
+    summary = map_image(trained, image, out, tile=tile, overlap=overlap, jobs=jobs,
+                        resume=resume, overwrite=overwrite, memory_limit_mb=memory_limit,
+                        progress=True, alpha=alpha)
+    png, page = write_map_views(out, image, memory_limit_mb=memory_limit)
+    typer.echo(map_summary_text(summary))
+    typer.echo(f"map: {png}\npage: {page}")
+    if summary.scored == 0 and summary.skipped == 0:
+        raise TopoclassError(f"{out / 'tiles.csv'}: none of the {len(summary.plan)} tiles could "
+                             "be scored; see the message column")
+
+
 def _human_summary(summary: dict) -> str:
     lines = [f"{summary['image']}"]
     spacing = f"{summary['spacing_px']:.2f} px"
@@ -376,7 +622,8 @@ def _human_summary(summary: dict) -> str:
     lines.append(f"  spacing          {spacing}")
     lines.append(f"  polarity         {summary['polarity']}")
     lines.append("  (persistence values below are in units of the spacing)")
-    skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs"}
+    skip = {"image", "n_sites", "n_interior", "spacing_px", "spacing_nm", "polarity", "outputs",
+            "nearest_labelled"}
     for key, value in summary.items():
         if key in skip or value is None or (key.endswith("_err") and key[:-4] in summary):
             continue
@@ -385,9 +632,36 @@ def _human_summary(summary: dict) -> str:
         if err is not None:
             text += f" ± {err:.2g}"  # the amount's uncertainty (topoclass.amounts)
         lines.append(f"  {key:<16} {text}")
+    for rank, n in enumerate(summary.get("nearest_labelled", []), start=1):
+        lines.append(f"  nearest labelled {rank}: {n['label']} (sliced Wasserstein H1 "
+                     f"{n['distance']:.3g}) {n['image']}")
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+def _model_settings(model_dir: Path, max_pixels: int):
+    """A saved model and the feature settings it was trained with (``max_pixels`` replaced)."""
+    import dataclasses
+
+    from topoclass.features import FeatureSettings
+    from topoclass.model import load_model
+
+    trained = load_model(model_dir)
+    settings = dataclasses.replace(FeatureSettings.from_model(trained), max_pixels=max_pixels)
+    return settings, trained
+
+
+def _region_options(region: str | None, no_auto_region: bool) -> dict:
+    """The FeatureSettings fields the region options set (none when not given)."""
+    from topoclass.region import parse_region
+
+    options: dict = {}
+    if region is not None:
+        options["region"] = parse_region(region)
+    if no_auto_region:
+        options["auto_region"] = False
+    return options
 
 
 def _one_line(exc: BaseException) -> str:

@@ -25,3 +25,7 @@ class LabelSheetError(TopoclassError):
 
 class ModelFileError(TopoclassError):
     """A model folder is missing, altered, untrusted or written by an incompatible version."""
+
+
+class StoreError(TopoclassError):
+    """A results store cannot be reached, opened or written; the message names it (and host)."""

@@ -25,16 +25,19 @@ import numpy as np
 from topoclass import __version__
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.amounts import PatternAmounts, pattern_amounts
+from topoclass.augment import zoom_image
 from topoclass.errors import TopoclassError
 from topoclass.images import Micrograph, read_micrograph
 from topoclass.order import order_measures
 from topoclass.persistence import DEFAULT_MAX_SCALE, Diagrams, pattern_persistence
 from topoclass.records import PatternRecord
+from topoclass.region import AnalysedRegion, analysed_region
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 5
+_CACHE_LAYOUT = 7
 
 
 @dataclass(frozen=True)
@@ -51,12 +54,23 @@ class FeatureSettings:
         Pixel size to use when a file does not record one.
     max_pixels : int
         Refuse images larger than this (protects against decompression bombs).
+    region : (x0, y0, x1, y1) or None
+        Region to analyse, in pixels or fractions of the frame (:mod:`topoclass.region`);
+        None for the whole frame.
+    auto_region : bool
+        Find an instrument data bar (inside ``region``) and leave it out.
     """
 
     polarity: str = "auto"
     max_scale: float = DEFAULT_MAX_SCALE
     pixel_size_nm: float | None = None
     max_pixels: int = 100_000_000
+    region: tuple[float, float, float, float] | None = None
+    auto_region: bool = True
+
+    def __post_init__(self) -> None:
+        if self.region is not None:  # a model card stores it as a JSON list
+            object.__setattr__(self, "region", tuple(float(v) for v in self.region))
 
     def key(self) -> str:
         """A short stable hash of what shapes a record, the package version and cache layout.
@@ -113,10 +127,18 @@ class ImageMeasurement:
     pattern: SitePattern
     record: PatternRecord
     amounts: PatternAmounts | None = None
+    region: AnalysedRegion | None = None
 
 
-def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> ImageMeasurement:
+def measure_image(
+    path: str | Path, settings: FeatureSettings | None = None, *, zoom: float = 1.0
+) -> ImageMeasurement:
     """Read one micrograph, find its sites, and compute persistence and order measures.
+
+    The sites are searched in the analysed region (:func:`topoclass.region.analysed_region`:
+    the settings' region less an instrument data bar). ``zoom`` other than 1 measures a
+    rescaled copy of that region instead (:func:`topoclass.augment.zoom_image`, for training
+    over a range of magnifications); the returned micrograph is then the copy.
 
     Raises
     ------
@@ -125,22 +147,49 @@ def measure_image(path: str | Path, settings: FeatureSettings | None = None) -> 
     """
     settings = settings or FeatureSettings()
     micrograph = read_micrograph(path, max_pixels=settings.max_pixels)
+    return measure_micrograph(micrograph, settings, zoom=zoom)
+
+
+def measure_micrograph(micrograph: Micrograph, settings: FeatureSettings | None = None, *,
+                       zoom: float = 1.0) -> ImageMeasurement:
+    """Sites, persistence, order measures and amounts of an image already read.
+
+    The part of :func:`measure_image` after reading, so that a piece of a large micrograph
+    (:mod:`topoclass.mapping`) is measured exactly as a whole file is.
+    """
+    settings = settings or FeatureSettings()
+    source = micrograph.source
     pixel_size = micrograph.pixel_size_nm
     if pixel_size is None:
         pixel_size = settings.pixel_size_nm
-    pattern = find_sites(
-        micrograph.image, polarity=settings.polarity, pixel_size_nm=pixel_size, source=str(path)
-    )
+    region = analysed_region(micrograph.image, settings.region, auto=settings.auto_region,
+                             source=source)
+    image, box = micrograph.image, region.box
+    if zoom != 1.0:
+        x0, y0, x1, y1 = box
+        image = zoom_image(image[y0:y1, x0:x1], zoom)
+        micrograph = dataclasses.replace(micrograph, image=image)
+        pixel_size = None if pixel_size is None else pixel_size / zoom
+        box = None
+    pattern = find_sites(image, polarity=settings.polarity, pixel_size_nm=pixel_size,
+                         source=source, region=box)
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
     amounts = pattern_amounts(pattern, diagrams)
-    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path),
-                           amounts=amounts.values)
-    return ImageMeasurement(micrograph, pattern, record, amounts)
+    remarks = [f"left out: {region.left_out()}"] if not region.whole else []
+    if not pattern.preferred_spacing:
+        remarks.append("no preferred spacing (no ring in the power spectrum): the scale comes "
+                       "from the spots, the spacing is that of a lattice of equal density")
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=source,
+                           amounts=amounts.values, region=pattern.frame,
+                           remarks=tuple(remarks))
+    return ImageMeasurement(micrograph, pattern, record, amounts, region)
 
 
-def measure_pattern(path: str | Path, settings: FeatureSettings | None = None) -> PatternRecord:
+def measure_pattern(
+    path: str | Path, settings: FeatureSettings | None = None, *, zoom: float = 1.0
+) -> PatternRecord:
     """The :class:`PatternRecord` of one micrograph (no cache); see :func:`measure_image`."""
-    return measure_image(path, settings).record
+    return measure_image(path, settings, zoom=zoom).record
 
 
 def measure_patterns(
@@ -151,12 +200,13 @@ def measure_patterns(
     jobs: int = 1,
     progress: bool = False,
     description: str = "features",
+    zooms: Sequence[float] | None = None,
 ) -> list[RecordResult]:
     """Pattern records of many images, in input order; see :func:`iter_records`."""
     return list(
         iter_records(
             paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-            description=description,
+            description=description, zooms=zooms,
         )
     )
 
@@ -186,6 +236,7 @@ def iter_records(
     jobs: int = 1,
     progress: bool = False,
     description: str = "features",
+    zooms: Sequence[float] | None = None,
 ) -> Iterator[RecordResult]:
     """Yield a :class:`RecordResult` per path, in input order, as images finish.
 
@@ -203,18 +254,25 @@ def iter_records(
         limited to one thread so that ``jobs`` workers do not oversubscribe the cores.
     progress : bool
         Show a progress bar (images done, rate, time left) on stderr.
+    zooms : sequence of float, optional
+        One zoom factor per path: measure a rescaled copy of the image instead
+        (:func:`measure_image`); cached apart from the original.
     """
     settings = settings or FeatureSettings()
     paths = [Path(p) for p in paths]
+    zooms = [1.0] * len(paths) if zooms is None else [float(z) for z in zooms]
+    if len(zooms) != len(paths):
+        raise ValueError(f"{len(zooms)} zoom factors for {len(paths)} paths")
     cache = _cache_for(cache_dir, settings)
     work = _Worker(settings, cache)
     if jobs == 1 or len(paths) <= 1:
-        results: Iterator[RecordResult] = (work(p) for p in paths)
+        results: Iterator[RecordResult] = (work(p, z) for p, z in zip(paths, zooms, strict=True))
     else:
         from joblib import Parallel, delayed
 
         parallel = Parallel(n_jobs=jobs, return_as="generator", batch_size="auto")
-        results = parallel(delayed(_limited)(work, p) for p in paths)
+        results = parallel(delayed(_limited)(work, p, z)
+                           for p, z in zip(paths, zooms, strict=True))
     if not progress:
         yield from results
         return
@@ -234,16 +292,19 @@ class _Worker:
     def __init__(self, settings: FeatureSettings, cache: _RecordCache | None):
         self.settings = settings
         self.cache = cache
+        self.owner = pool_owner()
 
-    def __call__(self, path: Path) -> RecordResult:
+    def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         try:
             sha = file_sha256(path)
         except OSError as exc:
             reason = exc.strerror or type(exc).__name__
             return RecordResult(path, None, None, f"{path}: cannot read the file ({reason}); "
                                  "check that it exists and is readable")
+        entry = sha if zoom == 1.0 else f"{sha}-zoom{zoom:.6g}"
         if self.cache is not None:
-            hit = self.cache.get(sha, path)
+            hit = self.cache.get(entry, path)
             if hit is not None:
                 record, notes = hit
                 return RecordResult(path, sha, record, notes=notes)
@@ -252,7 +313,7 @@ class _Worker:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             try:
-                measured = measure_image(path, self.settings)
+                measured = measure_image(path, self.settings, zoom=zoom)
             except TopoclassError as exc:
                 # Only input errors become a failed result (the readers turn every decoder
                 # failure into ImageReadError); anything else is a bug and must stop the run.
@@ -260,15 +321,15 @@ class _Worker:
         notes = tuple(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
         record = measured.record
         if self.cache is not None:
-            self.cache.put(sha, record, notes, measured.pattern)
+            self.cache.put(entry, record, notes, measured.pattern)
         return RecordResult(path, sha, record, notes=notes)
 
 
-def _limited(work: Callable, path: Path) -> RecordResult:
+def _limited(work: Callable, path: Path, zoom: float = 1.0) -> RecordResult:
     from threadpoolctl import threadpool_limits
 
     with threadpool_limits(limits=1):
-        return work(path)
+        return work(path, zoom)
 
 
 def _cache_for(cache_dir, settings: FeatureSettings) -> _RecordCache | None:
@@ -336,6 +397,8 @@ def _record_to_arrays(record: PatternRecord) -> dict[str, np.ndarray]:
     names = list(record.amounts)
     arrays["amount_keys"] = np.array(names, dtype=str)
     arrays["amount_values"] = np.array([record.amounts[k] for k in names], dtype=float)
+    arrays["region"] = np.array(record.region if record.region is not None else [], dtype=int)
+    arrays["remarks"] = np.array(record.remarks, dtype=str)
     return arrays
 
 
@@ -343,7 +406,10 @@ def _record_from_arrays(data, source: str) -> PatternRecord:
     diagrams = Diagrams.from_dict({k[2:]: data[k] for k in data.files if k.startswith("d_")})
     order = dict(zip(data["order_keys"].tolist(), data["order_values"].tolist(), strict=True))
     amounts = dict(zip(data["amount_keys"].tolist(), data["amount_values"].tolist(), strict=True))
-    return PatternRecord(diagrams=diagrams, order=order, source=source, amounts=amounts)
+    region = tuple(int(v) for v in data["region"]) or None
+    remarks = tuple(str(r) for r in data["remarks"])
+    return PatternRecord(diagrams=diagrams, order=order, source=source, amounts=amounts,
+                         region=region, remarks=remarks)
 
 
 def _pattern_to_arrays(pattern: SitePattern | None) -> dict[str, np.ndarray]:
@@ -354,7 +420,9 @@ def _pattern_to_arrays(pattern: SitePattern | None) -> dict[str, np.ndarray]:
     pixel = np.nan if pattern.pixel_size_nm is None else float(pattern.pixel_size_nm)
     return {"p_xy": pattern.xy, "p_border": pattern.border, "p_shape": np.array(pattern.shape),
             "p_spacing": np.array(pattern.spacing), "p_polarity": np.array(pattern.polarity),
-            "p_pixel_size_nm": np.array(pixel)}
+            "p_pixel_size_nm": np.array(pixel),
+            "p_region": np.array(pattern.region or [], dtype=int),
+            "p_preferred_spacing": np.array(pattern.preferred_spacing)}
 
 
 def _pattern_from_arrays(data, source: str) -> SitePattern:
@@ -362,4 +430,6 @@ def _pattern_from_arrays(data, source: str) -> SitePattern:
     return SitePattern(xy=data["p_xy"], spacing=float(data["p_spacing"]),
                        polarity=str(data["p_polarity"]), border=data["p_border"],
                        shape=tuple(int(v) for v in data["p_shape"]),
-                       pixel_size_nm=None if np.isnan(pixel) else pixel, source=source)
+                       pixel_size_nm=None if np.isnan(pixel) else pixel, source=source,
+                       region=tuple(int(v) for v in data["p_region"]) or None,
+                       preferred_spacing=bool(data["p_preferred_spacing"]))

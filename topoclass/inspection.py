@@ -6,6 +6,7 @@ A use-case module: it strings the pipeline stages together for a single image. T
 
 from __future__ import annotations
 
+import csv
 import json
 import math
 from pathlib import Path
@@ -13,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.features import FeatureSettings, ImageMeasurement, measure_image
+from topoclass.model.neighbours import nearest_labelled
 from topoclass.records import barcode_summary
 
 #: Keys of :func:`summarise` beyond the image and site counts, in print order.
@@ -40,19 +42,49 @@ def inspect_image(
     polarity: str = "auto",
     pixel_size_nm: float | None = None,
     settings: FeatureSettings | None = None,
+    model=None,
 ) -> dict:
     """Find the sites of one micrograph and summarise its record.
 
     Returns a JSON-ready dict (see :func:`summarise`); with ``out`` it also writes
     ``sites.csv`` (``x,y,border``) there and lists the files written under ``outputs``.
+    With a trained ``model`` that keeps its training diagrams, the summary also lists under
+    ``nearest_labelled`` the three training images nearest by the sliced Wasserstein distance
+    between H1 diagrams (:mod:`topoclass.model.neighbours`), and ``out`` gets their thumbnails
+    (``nearest_1.png`` ...) and ``nearest.csv``.
     """
+    if settings is None and model is not None:
+        settings = FeatureSettings.from_model(model)  # measured as its training images were
     if settings is None:
         settings = FeatureSettings(polarity=polarity, pixel_size_nm=pixel_size_nm)
     measurement = measure_image(path, settings)
     summary = summarise(measurement)
+    nearest = nearest_labelled(model, measurement.record.diagrams.h1)
+    if nearest is not None:
+        summary["nearest_labelled"] = [{k: v for k, v in n.items() if k != "index"}
+                                       for n in nearest]
     if out is not None:
-        summary["outputs"] = [str(p) for p in write_inspection(measurement, out)]
+        written = write_inspection(measurement, out)
+        if nearest is not None:
+            written += _write_nearest(model.neighbours, nearest, Path(out))
+        summary["outputs"] = [str(p) for p in written]
     return summary
+
+
+def _write_nearest(neighbours, nearest: list[dict], out: Path) -> list[Path]:
+    from PIL import Image
+
+    table = out / "nearest.csv"
+    with open(table, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(["rank", "label", "sliced_wasserstein_h1", "image", "thumbnail"])
+        paths = []
+        for rank, n in enumerate(nearest, start=1):
+            thumb = out / f"nearest_{rank}.png"
+            Image.fromarray(neighbours.thumbnails[n["index"]]).save(thumb)
+            paths.append(thumb)
+            writer.writerow([rank, n["label"], f"{n['distance']:.6g}", n["image"], thumb.name])
+    return [table, *paths]
 
 
 def summarise(measurement: ImageMeasurement) -> dict:
@@ -67,6 +99,9 @@ def summarise(measurement: ImageMeasurement) -> dict:
         "spacing_nm": pattern.spacing_nm,
         "pixel_size_nm": pattern.pixel_size_nm,
         "polarity": pattern.polarity,
+        "preferred_spacing": pattern.preferred_spacing,
+        "analysed_region": list(pattern.frame),
+        "left_out": measurement.region.left_out() if measurement.region is not None else "",
     }
     merged = {**bars, **record.order}
     for key in SUMMARY_MEASURES:

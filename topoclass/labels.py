@@ -151,11 +151,24 @@ def write_labels(
         writer = csv.writer(fh, lineterminator="\n")
         writer.writerow(header)
         for i, (image, label) in enumerate(zip(images, labels, strict=True)):
-            row = [_relative_to(Path(image), base), str(label)]
+            row = [sheet_entry(Path(image), base), str(label)]
             if groups is not None:
                 row.append(str(groups[i]))
             writer.writerow(row)
     return path
+
+
+def sheet_entry(image: str | Path, base: str | Path) -> str:
+    """How a label sheet in folder ``base`` names ``image``: relative to it, with ``/``.
+
+    An image outside ``base`` keeps its absolute path, so the entry never depends on the
+    working directory.
+    """
+    absolute = Path(os.path.abspath(image))
+    try:
+        return absolute.relative_to(base).as_posix()
+    except ValueError:
+        return absolute.as_posix()
 
 
 # --------------------------------------------------------------------------- CSV
@@ -360,9 +373,24 @@ def _check_classes(labels, groups, n_folds, partial: bool = False) -> list[str]:
                 n, unit = counts[label], "image"
             if n < n_folds:
                 problems.append(f"class '{label}' has {n} {unit}{'s' if n != 1 else ''}, fewer "
-                                f"than the {n_folds} cross-validation folds, add {unit}s to "
-                                "it or use fewer folds")
+                                f"than the {n_folds} cross-validation folds; "
+                                + _more_folds_advice(label, n, n_folds, unit))
     return problems
+
+
+def _more_folds_advice(label: str, n: int, n_folds: int, unit: str) -> str:
+    """What to do when a class has fewer images (or groups) than folds."""
+    more = n_folds - n
+    if unit == "group":
+        # Every fold must hold out one whole sample of each class: more images of the same
+        # samples do not help, images of other samples do.
+        add = (f"label images of {more} more sample{'s' if more != 1 else ''} (groups) of "
+               f"'{label}'")
+    else:
+        add = f"label {more} more image{'s' if more != 1 else ''} of '{label}'"
+    if n >= 2:
+        return f"{add}, or use --cv {n}"
+    return add + " (cross-validation needs at least 2 per class, so fewer folds cannot help)"
 
 
 def _line_of(problem: str) -> int:
@@ -391,14 +419,6 @@ def _is_dir(path: Path) -> bool:
         return path.is_dir()
     except (OSError, ValueError):
         return False
-
-
-def _relative_to(image: Path, base: Path) -> str:
-    absolute = Path(os.path.abspath(image))
-    try:
-        return absolute.relative_to(base).as_posix()
-    except ValueError:
-        return absolute.as_posix()
 
 
 def _fail(source: Path, problems: list[str]) -> NoReturn:

@@ -208,8 +208,9 @@ def pattern_persistence(
         (for H1 the longest edge of the triangle that fills the loop; a truncated H1 bar, which
         has none, by its birth edge), i.e. to the Voronoi cell holding that midpoint: the
         cells tile the plane, so bars per inner site is an unbiased density with no perimeter
-        term (keeping only edges with both ends inner would undercount by a few per cent in a
-        30-spacing window; measured in benchmarks/RESULTS_persistence.md).
+        term (keeping only edges with both ends inner would undercount by the share of bars
+        that straddle the perimeter of the inner region; tests/test_persistence.py checks that
+        the per-site statistics agree across crop sizes).
     border_guard : float
         Extra depth, in spacings, between border sites and the sites bars are charged to.
 

@@ -31,12 +31,19 @@ class PatternRecord:
     amounts : mapping of str to float
         Physical amounts (:func:`topoclass.amounts.pattern_amounts`: spacing in nm, pore
         density, vacancies, grains, disorder index, with errors); not classification features.
+    region : (x0, y0, x1, y1) or None
+        Half-open pixel box the sites were searched in (:mod:`topoclass.region`).
+    remarks : tuple of str
+        What a person should know about the measurement: what was left out of the frame (a
+        data bar), that the pattern had no preferred spacing.
     """
 
     diagrams: Diagrams
     order: Mapping[str, float] = field(default_factory=dict)
     source: str | None = None
     amounts: Mapping[str, float] = field(default_factory=dict)
+    region: tuple[int, int, int, int] | None = None
+    remarks: tuple[str, ...] = ()
 
 
 def barcode_summary(

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.amounts import AMOUNT_KEYS
-from topoclass.errors import TopoclassError
+from topoclass.errors import StoreError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
 
@@ -68,19 +68,54 @@ AMOUNT_COLUMNS = AMOUNT_KEYS
 
 @dataclass
 class ScoreSummary:
-    """What a scoring run did."""
+    """What a scoring run did, and what the results file says of every image it was given.
+
+    ``scored + failed + skipped == given``; ``sum(per_class) + review + unfamiliar +
+    total_failed == given`` (an image finished by an earlier run counts by its row in the file).
+    """
 
     out: Path
+    #: Images given to this run.
+    given: int = 0
+    #: Images measured by this run: scored (a row with status ok) or failed (an error row).
     scored: int = 0
     failed: int = 0
+    #: Images already in the file (``resume``), and how many of those rows are errors.
     skipped: int = 0
+    skipped_failed: int = 0
+    #: Over every image given: unfamiliar ones, ``review`` ones (more than one class cannot be
+    #: ruled out), and the verdicts (single classes) of the others.
     unfamiliar: int = 0
-    #: Scored images whose verdict is ``review`` (more than one class cannot be ruled out).
     review: int = 0
-    #: Verdicts (single classes) of the scored images that are neither unfamiliar nor review.
     per_class: Counter = field(default_factory=Counter)
+    #: The results store the rows also went to (see :mod:`topoclass.store`), if any.
+    store: str | None = None
+    #: Why the store stopped taking rows (the CSV still has every row), if it did.
+    store_error: str | None = None
     #: Error rate of the review band used.
     alpha: float | None = None
+
+    @property
+    def total_failed(self) -> int:
+        """Images given whose row in the file is an error, from this run or an earlier one."""
+        return self.failed + self.skipped_failed
+
+    def _count(self, row: dict, *, earlier: bool) -> None:
+        if row.get("status") != "ok":
+            if earlier:
+                self.skipped_failed += 1
+            else:
+                self.failed += 1
+            return
+        if not earlier:
+            self.scored += 1
+        verdict = row.get("verdict", "")
+        if verdict == "unfamiliar":
+            self.unfamiliar += 1
+        elif verdict == "review":
+            self.review += 1
+        else:
+            self.per_class[verdict] += 1
 
 
 def score_columns(classes: Sequence[str]) -> list[str]:
@@ -88,7 +123,8 @@ def score_columns(classes: Sequence[str]) -> list[str]:
     return (
         ["image", "status", "predicted", "confidence", "verdict"]
         + [f"p_{c}" for c in classes]
-        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "sha256", "message"]
+        + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS, "analysed_region", "sha256",
+           "message"]
     )
 
 
@@ -103,6 +139,7 @@ def score_images(
     overwrite: bool = False,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    recorder=None,
     alpha: float | None = None,
 ) -> ScoreSummary:
     """Score images with a trained model and append one row per image to ``out``.
@@ -127,6 +164,11 @@ def score_images(
         Replace an existing ``out``.
     cache_dir, progress
         As in :func:`topoclass.features.iter_records`.
+    recorder : topoclass.store.BatchRecorder, optional
+        Also writes every row to a results store, each chunk committed there before it is
+        written to the CSV. With ``resume``, images the store already holds for this model and
+        settings are not scored again: their stored rows are copied to the CSV. A store that
+        fails stops taking rows (``summary.store_error`` says why); the CSV still gets them.
     alpha : float, optional
         Error rate of the review band behind the ``verdict`` column; the model's own (set at
         training) when omitted.
@@ -141,8 +183,9 @@ def score_images(
         from topoclass.model.conformal import check_alpha
 
         alpha = check_alpha(alpha)
-    summary = ScoreSummary(out=out, alpha=alpha if alpha is not None
-                           else (band.alpha_ if band is not None else None))
+    summary = ScoreSummary(out=out, given=len(paths), alpha=alpha if alpha is not None
+                           else (band.alpha_ if band is not None else None),
+                           store=None if recorder is None else recorder.store.name)
     if out.exists() and not (resume or overwrite):
         raise TopoclassError(
             f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
@@ -156,35 +199,41 @@ def score_images(
             key = _same_file_key(p)
             if key in done:
                 try:
-                    unchanged = file_sha256(p) in done[key]
+                    sha = file_sha256(p)
                 except OSError:
-                    unchanged = True  # gone since: keep its finished row
-                if unchanged:
+                    sha = None  # gone since: keep its finished row
+                match = [r for r in done[key] if sha is None or r.get("sha256") == sha]
+                if match:
                     summary.skipped += 1
+                    summary._count(match[-1], earlier=True)
                     continue
                 _drop_rows(out, columns, key)  # the file changed: its old row is stale
             todo.append(p)
         with open(out, "a", newline="", encoding="utf-8") as fh:
+            if resume and recorder is not None:
+                todo = _copy_stored_rows(recorder, todo, fh, columns, summary)
             results = iter_records(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
                 description="scoring",
             )
             for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
                 rows = _score_rows(model, classes, chunk, alpha)
+                if recorder is not None and summary.store_error is None:
+                    try:
+                        recorder.add(rows)
+                    except StoreError as exc:
+                        summary.store_error = str(exc)
                 fh.write("".join(_format_row(row, columns) for row in rows))
                 fh.flush()
                 os.fsync(fh.fileno())
                 for row in rows:
-                    if row["status"] == "ok":
-                        summary.scored += 1
-                        if row["verdict"] == "unfamiliar":
-                            summary.unfamiliar += 1
-                        elif row["verdict"] == "review":
-                            summary.review += 1
-                        else:
-                            summary.per_class[row["verdict"]] += 1
-                    else:
-                        summary.failed += 1
+                    summary._count(row, earlier=False)
+    if recorder is not None and summary.store_error is None:
+        try:
+            recorder.finish(scored=summary.scored, failed=summary.failed,
+                            skipped=summary.skipped)
+        except StoreError as exc:
+            summary.store_error = str(exc)
     return summary
 
 
@@ -198,14 +247,21 @@ def read_scores(path: str | Path) -> list[dict[str, str]]:
 
 def summary_text(summary: ScoreSummary) -> str:
     """A short human summary of a run, ending with the caution about probabilities."""
-    lines = [f"scored {summary.scored}, failed {summary.failed}, already done {summary.skipped}"]
+    done = f", already done {summary.skipped}" if summary.skipped else ""
+    if summary.skipped_failed:
+        done += f" ({summary.skipped_failed} of them failed)"
+    lines = [f"images {summary.given}: scored {summary.scored}, failed {summary.failed}{done}"]
     for cls, n in sorted(summary.per_class.items()):
         lines.append(f"  predicted {cls:<16} {n}")
-    lines.append(f"  review: {summary.review} (more than one class cannot be ruled out, so "
-                 "not counted above; look at them)")
-    lines.append(f"  unfamiliar: {summary.unfamiliar} (unlike the training images or no class "
-                 "fits, so their class is not counted above; check them by eye)")
+    lines.append(f"  review {'':<19} {summary.review} (more than one class cannot be ruled "
+                 "out, so not counted as any class; look at them)")
+    lines.append(f"  unfamiliar {'':<15} {summary.unfamiliar} (unlike the training images or "
+                 "no class fits, so not counted as any class; check them by eye)")
+    lines.append(f"  failed {'':<19} {summary.total_failed} (see the message column)")
     lines.append(f"results: {summary.out}")
+    if summary.store is not None:
+        lines.append(f"store: {summary.store}" if summary.store_error is None else
+                     f"store: NOT complete ({summary.store_error}); every row is in the CSV")
     lines.append("")
     if summary.alpha is not None:
         lines.append(BAND_NOTE.format(alpha=summary.alpha))
@@ -215,6 +271,34 @@ def summary_text(summary: ScoreSummary) -> str:
 
 # --------------------------------------------------------------------------------------------
 # private helpers
+
+
+def _copy_stored_rows(recorder, todo: list[Path], fh, columns: list[str],
+                      summary: ScoreSummary) -> list[Path]:
+    """Write the stored rows of images the store already holds; return the images still to do."""
+    hashes: dict[Path, str] = {}
+    for p in todo:
+        try:
+            hashes[p] = file_sha256(p)
+        except OSError:
+            pass  # unreadable now: scoring it again writes the error row
+    try:
+        stored = recorder.finished(hashes.values())
+    except StoreError as exc:
+        summary.store_error = str(exc)
+        return todo
+    rest = []
+    for p in todo:
+        row = stored.get(hashes.get(p, ""))
+        if row is None:
+            rest.append(p)
+            continue
+        fh.write(_format_row({**row, "image": str(p)}, columns))
+        summary.skipped += 1
+        summary._count(row, earlier=True)
+    fh.flush()
+    os.fsync(fh.fileno())
+    return rest
 
 
 def _chunks(results, size: int, seconds: float):
@@ -275,7 +359,9 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
         value = record.amounts.get(key)
         if value is not None and np.isfinite(value):
             row[key] = value
-    messages = list(result.notes)
+    if record.region is not None:  # x0,y0,x1,y1 as --region takes it
+        row["analysed_region"] = ",".join(str(v) for v in record.region)
+    messages = list(result.notes) + list(record.remarks)
     if unfamiliarity > 1.0:
         why = "; ".join(reasons) or f"unfamiliarity {unfamiliarity:.2f}"
         messages.insert(0, f"unlike the training images ({why}); check by eye")
@@ -295,11 +381,11 @@ def _format_row(row: dict[str, object], columns: list[str]) -> str:
     return buf.getvalue()
 
 
-def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path, set[str]]:
+def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path, list[dict]]:
     """Start a fresh file, or validate and clean an existing one.
 
-    Returns the finished images as {resolved path: content hashes of its rows}, so that a
-    path spelled another way (relative, absolute, through a symlink) still finds its row.
+    Returns the finished rows by resolved path, so that a path spelled another way (relative,
+    absolute, through a symlink) still finds its row.
     """
     if not (resume and out.exists()):
         out.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
@@ -316,9 +402,9 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
     if not text.endswith("\n"):
         # A crash mid-write left half a row: cut it, that image is scored again.
         out.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
-    done: dict[Path, set[str]] = {}
+    done: dict[Path, list[dict]] = {}
     for r in read_scores(out):
-        done.setdefault(_same_file_key(r["image"]), set()).add(r.get("sha256") or "")
+        done.setdefault(_same_file_key(r["image"]), []).append(r)
     return done
 
 

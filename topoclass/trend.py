@@ -311,6 +311,71 @@ def plot_trend(result: TrendResult):
     return fig
 
 
+def trend_svg(result: TrendResult, *, width: int = 720, panel: int = 110) -> str:
+    """The charts of :func:`plot_trend` as one inline SVG, drawn from the arrays.
+
+    Made for the HTML batch report, where a matplotlib figure would cost more than the rest
+    of the page: the same centre line, dashed limits, batch changes and flagged points.
+    """
+    import html
+
+    left, right, top = 120, 10, 8
+    rows = result.table
+    n = len(rows)
+    x = np.arange(n, dtype=float)
+    sx = (width - left - right) / max(n - 1, 1)
+    batches = rows["batch"].astype(str).to_numpy()
+    starts = [i for i in range(1, n) if batches[i] != batches[i - 1]]
+    parts = []
+    for k, (chart, (_, lim)) in enumerate(zip(result.charts, result.limits.iterrows(),
+                                              strict=True)):
+        y = rows[chart].to_numpy(dtype=float)
+        finite = y[np.isfinite(y)]
+        low = min([lim["lower"], *finite]) if finite.size else lim["lower"]
+        high = max([lim["upper"], *finite]) if finite.size else lim["upper"]
+        if not high > low:
+            low, high = low - 1.0, high + 1.0
+        y0 = top + k * panel
+        height = panel - 22
+
+        def py(v, y0=y0, low=low, high=high, height=height):
+            return y0 + height * (1.0 - (v - low) / (high - low))
+
+        px = left + x * sx
+        parts.append(f"<text x='{left - 6}' y='{y0 + height / 2:.1f}' text-anchor='end' "
+                     f"font-size='11'>{html.escape(chart)}</text>")
+        parts.append(f"<rect x='{left}' y='{y0}' width='{width - left - right}' "
+                     f"height='{height}' fill='none' stroke='#bbb'/>")
+        for s in starts:
+            xs = left + (s - 0.5) * sx
+            parts.append(f"<line x1='{xs:.1f}' x2='{xs:.1f}' y1='{y0}' y2='{y0 + height}' "
+                         "stroke='#999' stroke-dasharray='1,2'/>")
+        parts.append(f"<line x1='{left}' x2='{width - right}' y1='{py(lim['centre']):.1f}' "
+                     f"y2='{py(lim['centre']):.1f}' stroke='#000'/>")
+        for level in (lim["lower"], lim["upper"]):
+            parts.append(f"<line x1='{left}' x2='{width - right}' y1='{py(level):.1f}' "
+                         f"y2='{py(level):.1f}' stroke='#D55E00' stroke-dasharray='5,3'/>")
+        ok = np.isfinite(y)
+        points = " ".join(f"{a:.1f},{py(b):.1f}" for a, b in zip(px[ok], y[ok], strict=True))
+        parts.append(f"<polyline points='{points}' fill='none' stroke='#0072B2' "
+                     "stroke-width='1'/>")
+        flags = rows[chart + "_flags"].astype(str).to_numpy()
+        for i in np.flatnonzero(ok):
+            hit = bool(flags[i]) and flags[i] != "nan"
+            title = html.escape(f"{rows['image'].iloc[i]}: {y[i]:.4g}"
+                                + (f" ({flags[i]})" if hit else ""))
+            parts.append(f"<circle cx='{px[i]:.1f}' cy='{py(y[i]):.1f}' r='{4 if hit else 2}' "
+                         f"fill='{'#D55E00' if hit else '#0072B2'}'><title>{title}</title>"
+                         "</circle>")
+        parts.append(f"<text x='{width - right}' y='{y0 + height + 12}' text-anchor='end' "
+                     f"font-size='10' fill='#555'>limits {lim['lower']:.4g} – "
+                     f"{lim['upper']:.4g}, centre {lim['centre']:.4g}</text>")
+    total = top + panel * len(result.charts)
+    return (f"<svg xmlns='http://www.w3.org/2000/svg' width='{width}' height='{total}' "
+            f"viewBox='0 0 {width} {total}' role='img' aria-label='control charts'>"
+            + "".join(parts) + "</svg>")
+
+
 # --------------------------------------------------------------------------------------------
 # private helpers
 

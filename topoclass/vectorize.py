@@ -124,8 +124,9 @@ class PersistenceImageFeatures(_RecordTransformer):
         Number of pixels along birth and along persistence; H0 uses the persistence count only.
     sigma : float
         Standard deviation of the Gaussian, in spacing units. The default 0.1 is about twice the
-        RMS site-position error that ``benchmarks/bench_sites.py`` measures (at most 0.043
-        spacing, ``benchmarks/RESULTS_sites.md``), so bars that differ only by position noise
+        RMS site-position error that ``benchmarks/bench_sites.py`` measures at the usual
+        spacings and noise (``benchmarks/RESULTS_sites.md``), so bars that differ only by
+        position noise
         share a pixel while a vacancy loop (persistence about 0.7) stays apart from noise loops.
     weight_exponent : float
         ``n`` in the weight ``persistence ** n``: 1 is linear in persistence (zero on the

@@ -7,18 +7,22 @@ them, and a notebook can call them the same way.
 from __future__ import annotations
 
 import dataclasses
+import shutil
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from topoclass._files import file_sha256
 from topoclass.errors import LabelSheetError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, measure_patterns
 from topoclass.labels import LabelSet, read_labels
 from topoclass.model import (
+    CARD_FILE,
     CLASSIFIERS,
     DEFAULT_ALPHA,
     DEFAULT_CLASSIFIER,
+    MODEL_FILE,
     TrainedModel,
     load_model,
     metrics_markdown,
@@ -28,6 +32,7 @@ from topoclass.model import (
     validate_model,
 )
 from topoclass.model.conformal import check_alpha
+from topoclass.model.neighbours import labelled_diagrams
 from topoclass.vectorize import (
     FEATURE_SETS,
     SYMMETRY_KEYS,
@@ -80,6 +85,37 @@ def labelled_records(
     return records, y, groups, failures
 
 
+def zoomed_records(
+    labels: LabelSet,
+    settings: FeatureSettings,
+    factors,
+    *,
+    jobs: int = 1,
+    cache_dir: str | Path | None = None,
+    progress: bool = False,
+) -> tuple[list, np.ndarray, np.ndarray, int]:
+    """Records of rescaled copies of a label set's images (:mod:`topoclass.augment`).
+
+    Every image gets one copy per zoom factor, with the image's label and group (the image
+    itself when the sheet has no groups), so copies of one image stay in one fold. Returns
+    ``(records, labels, groups, copies that could not be measured)``; a copy that fails (too
+    few sites at a small zoom) is left out.
+    """
+    factors = [float(f) for f in factors]
+    paths = [p for p in labels.images for _ in factors]
+    results = measure_patterns(
+        paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
+        description="zoomed copies", zooms=[f for _ in labels.images for f in factors],
+    )
+    owner = [i for i in range(len(labels.images)) for _ in factors]
+    keep = [k for k, r in enumerate(results) if r.ok]
+    records = [results[k].record for k in keep]
+    y = np.array([labels.labels[owner[k]] for k in keep])
+    names = labels.groups if labels.groups is not None else [str(p) for p in labels.images]
+    groups = np.array([names[owner[k]] for k in keep])
+    return records, y, groups, len(results) - len(keep)
+
+
 def train_from_labels(
     labels_source: str | Path,
     model_dir: str | Path | None = None,
@@ -96,6 +132,9 @@ def train_from_labels(
     progress: bool = False,
     figures: bool = True,
     alpha: float = DEFAULT_ALPHA,
+    zoom_range: tuple[float, float] | None = None,
+    zoom_copies: int = 3,
+    overwrite: bool = False,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -128,8 +167,20 @@ def train_from_labels(
         features into the model folder (:func:`topoclass.report.write_training_figures`).
     alpha : float
         Error rate of the review band (:class:`topoclass.model.ReviewBand`).
+    zoom_range : (lo, hi), optional
+        Also train on ``zoom_copies`` rescaled copies of every image at zoom factors spread
+        over this range (:mod:`topoclass.augment`), so the model covers those spacings in
+        pixels; the card records the range and the spacings reached.
+    zoom_copies : int
+        Copies per image with ``zoom_range``.
+    overwrite : bool
+        Replace a model already in ``model_dir``: once the new model is trained, every file
+        of the old one (its validation report too) is removed. Without it an existing model
+        folder is refused, before any work.
     """
     check_alpha(alpha)
+    if model_dir is not None:
+        _check_model_folder(Path(model_dir), overwrite=overwrite)
     if feature_set not in FEATURE_SETS:
         make_features(feature_set)  # raises the error that lists the valid names
     if classifier not in CLASSIFIERS:
@@ -144,6 +195,23 @@ def train_from_labels(
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
         _check_after_failures(labels, y, groups, cv, failures)
+    originals, original_labels = list(records), y  # the labelled images, without zoomed copies
+    augmentation = None
+    if zoom_range is not None:
+        from topoclass.augment import zoom_factors
+
+        factors = zoom_factors(zoom_range, zoom_copies)
+        extra, y_extra, g_extra, n_lost = zoomed_records(
+            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress
+        )
+        if groups is None:  # the image is the group: its copies must not cross a split
+            ok = {str(p) for p in labels.images} - {str(r.path) for r in failures}
+            groups = np.array([str(p) for p in labels.images if str(p) in ok])
+        records, y, groups = records + extra, np.concatenate([y, y_extra]), np.concatenate(
+            [groups, g_extra])
+        augmentation = {"zoom_range": [float(v) for v in zoom_range],
+                        "zoom_factors": [float(f) for f in factors],
+                        "copies_measured": len(extra), "copies_failed": int(n_lost)}
     comparison = None
     if select:
         candidates = [(name, make_features(name), classifier) for name in SELECT_FEATURE_SETS]
@@ -165,20 +233,45 @@ def train_from_labels(
             alpha=alpha, density=OrderMeasureFeatures(SYMMETRY_KEYS),
         )
     model.settings["features"] = dataclasses.asdict(settings)
+    model.settings["training_images"] = training_image_sizes(records)
+    model.settings["augmentation"] = augmentation
+    if model.range_check is not None:
+        names = list(model.range_check.names_)
+        if "spacing_px" in names:
+            k = names.index("spacing_px")
+            model.settings["spacing_px_range"] = [float(model.range_check.low_[k]),
+                                                  float(model.range_check.high_[k])]
     if model_dir is None:
         sheet = labels.source if labels.source.is_dir() else labels.source.parent
         model_dir = Path("models") / f"{sheet.name}-{model.feature_set_name}-{model.classifier}"
+        _check_model_folder(model_dir, overwrite=overwrite)
+    # Only now, with the new model in hand, is the old one removed: a failed run keeps it.
+    _clear_model_folder(Path(model_dir))
     extra = {
         "label_sheet": str(labels.source),
         "label_sheet_sha256": labels.sheet_hash,
         "failed_images": [r.error for r in failures],
     }
+    model.neighbours = labelled_diagrams(originals, original_labels, progress=progress)
     directory = save_model(model, model_dir, extra_card=extra)
     if figures:
         from topoclass.report import write_training_figures
 
-        write_training_figures(model, directory, records, y, seed=seed)
+        write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
+
+
+def training_image_sizes(records) -> dict:
+    """Median site count and spacing of the training images, for the model card.
+
+    A map of a large micrograph cuts it into tiles holding as many sites as a training image
+    (:func:`topoclass.mapping.tile_side`), so that each tile is measured at the scale the
+    model learnt.
+    """
+    n_sites = [float(r.diagrams.n_sites or len(r.diagrams.h0) + 1) for r in records]
+    spacing = [float(r.diagrams.spacing) for r in records]
+    return {"median_n_sites": float(np.median(n_sites)) if n_sites else None,
+            "median_spacing_px": float(np.median(spacing)) if spacing else None}
 
 
 def validate_from_labels(
@@ -189,16 +282,24 @@ def validate_from_labels(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    overrides: dict | None = None,
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
     Writes ``validation.md`` and the validation figures (confusion matrix, reliability, per
-    class) into ``out`` (default: the model folder) and returns the metrics.
+    class) into ``out`` (default: the model folder) and returns the metrics. A validation
+    report already in ``out`` is removed first, so that a failed run never leaves one that
+    describes another model or another set; the report names the model file's hash.
+    ``overrides`` replaces fields of the model's :class:`FeatureSettings` (for example the
+    region rule).
     """
     model = load_model(model_dir)
+    out = Path(out) if out is not None else Path(model_dir)
+    _remove_validation_report(out)
     labels = read_labels(labels_source)
+    settings = dataclasses.replace(FeatureSettings.from_model(model), **(overrides or {}))
     records, y, _, failures = labelled_records(
-        labels, FeatureSettings.from_model(model), jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
     )
     if not records:
         raise LabelSheetError(
@@ -206,15 +307,15 @@ def validate_from_labels(
         )
     metrics = validate_model(model, records, y)
     metrics["failed_images"] = [r.error for r in failures]
-    out = Path(out) if out is not None else Path(model_dir)
     out.mkdir(parents=True, exist_ok=True)
     report = out / "validation.md"
     report.write_text(
         metrics_markdown(
             metrics,
             title=f"Validation of {Path(model_dir).name}",
-            subtitle=f"Held-out set: {labels.source} ({len(y)} images measured, "
-            f"{len(failures)} failed).",
+            subtitle=f"Model: {Path(model_dir).resolve()} ({MODEL_FILE} SHA-256 "
+            f"{file_sha256(Path(model_dir) / MODEL_FILE)}). Held-out set: {labels.source} "
+            f"({len(y)} images measured, {len(failures)} failed).",
         ),
         encoding="utf-8",
     )
@@ -222,6 +323,45 @@ def validate_from_labels(
 
     write_metric_figures(metrics, out, prefix="validation_", title="validation")
     return ValidationRun(metrics=metrics, report=report, failures=failures)
+
+
+#: What :func:`validate_from_labels` writes (``write_metric_figures`` with its prefix).
+_VALIDATION_FILES = ("validation.md", *(f"validation_{name}.{ext}" for name in
+                     ("confusion", "reliability", "per_class") for ext in ("png", "svg")))
+
+
+def _remove_validation_report(out: Path) -> None:
+    for name in _VALIDATION_FILES:
+        (out / name).unlink(missing_ok=True)
+
+
+def _check_model_folder(directory: Path, *, overwrite: bool) -> None:
+    """Refuse a folder holding a model (unless ``overwrite``) or anything that is not a model."""
+    if not directory.exists():
+        return
+    if not directory.is_dir():
+        raise TopoclassError(f"{directory}: is a file, not a model folder; give --model a "
+                             "folder name")
+    if not any(directory.iterdir()):
+        return
+    if not (directory / CARD_FILE).is_file():
+        raise TopoclassError(f"{directory}: holds files but no model ({CARD_FILE}); give "
+                             "--model a new or empty folder")
+    if not overwrite:
+        raise TopoclassError(f"{directory}: a model is already there; pass --overwrite to "
+                             "replace it (its files, the validation report too, are removed) "
+                             "or give --model another folder")
+
+
+def _clear_model_folder(directory: Path) -> None:
+    """Remove everything an earlier model left in its folder (checked by _check_model_folder)."""
+    if not (directory / CARD_FILE).is_file():
+        return
+    for entry in directory.iterdir():
+        if entry.is_dir() and not entry.is_symlink():
+            shutil.rmtree(entry)
+        else:
+            entry.unlink()
 
 
 def _check_after_failures(labels, y, groups, cv, failures) -> None:
@@ -268,7 +408,7 @@ def run_demo(
     Makes a labelled training set and a separate "production" batch (other simulated membrane
     samples, another seed, plus a photograph of something else and a truncated file, as a real
     line delivers them), trains a model with grouped cross-validation, validates it on the
-    production batch's labels, and scores that batch into ``scores.csv`` with ``report.html``
+    production batch's labels, and scores that batch into ``scores.csv`` with ``scores.html``
     beside it.
     """
     from topoclass.images import collect_image_paths
@@ -290,7 +430,8 @@ def run_demo(
     _add_odd_images(prod_sheet.parent / "images")
     log("2/4 training (grouped cross-validation, then calibration)")
     training = train_from_labels(
-        train_sheet, workdir / "model", seed=seed, jobs=jobs, cache_dir=cache, progress=progress
+        train_sheet, workdir / "model", seed=seed, jobs=jobs, cache_dir=cache, progress=progress,
+        overwrite=True,  # the demo's own folder: a second demo run replaces the first
     )
     log("3/4 validating on the production batch's labels")
     validation = validate_from_labels(
@@ -305,7 +446,7 @@ def run_demo(
     )
     from topoclass.report import write_batch_report
 
-    write_batch_report(scores, model=training.model, progress=progress)
+    write_batch_report(scores, model=training.model, overwrite=True, progress=progress)
     return DemoRun(workdir, training, validation, scores, summary)
 
 

@@ -468,11 +468,11 @@ def _png_of(path: Path, side: int, max_pixels: int) -> bytes:
 
 @lru_cache(maxsize=32)
 def _sites_cached(path: str, mtime: float, settings: FeatureSettings) -> dict:
-    from topoclass.report.figures import _coordination_class, site_coordination
+    from topoclass.report.figures import coordination_class, site_coordination
 
     pattern = measure_image(path, settings).pattern
     rows, cols = pattern.shape
-    kinds = _coordination_class(site_coordination(pattern))
+    kinds = coordination_class(site_coordination(pattern))
     return {"width": cols, "height": rows, "spacing": float(pattern.spacing),
             "sites": [[round(float(x), 1), round(float(y), 1), str(k), bool(b)]
                       for (x, y), k, b in zip(pattern.xy, kinds, pattern.border, strict=True)]}

@@ -18,7 +18,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from topoclass.errors import LabelSheetError, TopoclassError
-from topoclass.labels import _relative_to, read_labels
+from topoclass.labels import read_labels, sheet_entry
 
 _COLUMNS = ("image", "label", "group")
 
@@ -88,7 +88,7 @@ class LabelBook:
         path = Path(image)
         if not path.is_absolute():
             path = Path.cwd() / path
-        return _relative_to(path, self.path.parent)
+        return sheet_entry(path, self.path.parent)
 
     # ---------------------------------------------------------------- changing
 

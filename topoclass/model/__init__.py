@@ -49,6 +49,7 @@ from topoclass.model.evaluation import (
     reliability_table,
 )
 from topoclass.model.folds import fold_splits
+from topoclass.model.neighbours import LabelledDiagrams, labelled_diagrams, sliced_distance
 from topoclass.model.novelty import MahalanobisNovelty, NeighbourDensityNovelty, RangeNovelty
 from topoclass.model.pipeline import (
     CLASSIFIERS,
@@ -78,4 +79,5 @@ __all__ = [
     "cross_validate_model", "fit_calibrated", "fold_splits", "limit_by_evidence", "load_model",
     "metrics_from_probabilities", "metrics_markdown", "package_versions", "reliability_table",
     "save_model", "select_model", "train_model", "validate_model",
+    "LabelledDiagrams", "labelled_diagrams", "sliced_distance",
 ]

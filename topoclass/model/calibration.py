@@ -16,8 +16,8 @@ CALIBRATION_METHODS = ("auto", "sigmoid", "temperature", "isotonic")
 # Caruana 2005, "Predicting good probabilities with supervised learning"; the scikit-learn user
 # guide gives ~1000 samples as the rough limit). For small multi-class sets, one-vs-rest sigmoid
 # calibration with renormalisation flattened the probabilities in our measurement
-# (benchmarks/calibration_choice.md: ECE 0.15 vs 0.05 for temperature scaling, 30 per class),
-# while temperature scaling (one parameter, keeps the ranking; Guo et al. 2017) did not.
+# (benchmarks/calibration_choice.md, written by benchmarks/bench_calibration.py), while
+# temperature scaling (one parameter, keeps the ranking; Guo et al. 2017) did not.
 ISOTONIC_MIN_SAMPLES = 1000
 
 
@@ -86,7 +86,8 @@ def fit_calibrated(pipeline, X, y, groups, method, cv, seed) -> CalibratedClassi
     if n_splits < 2:
         unit = "images" if groups is None else "sample groups"
         raise TopoclassError(f"a class has fewer than 2 {unit} in a training part, too few to "
-                             f"calibrate; label more {unit} per class or use fewer folds")
+                             f"calibrate; label more {unit} of every class (fewer folds "
+                             "cannot help: each class needs at least 2)")
     splits = fold_splits(y, groups, n_splits, seed)
     # ensemble=False: the calibrator learns from out-of-fold predictions on the grouped folds,
     # then one pipeline fitted on all images is shipped. An ensemble of one pipeline per fold

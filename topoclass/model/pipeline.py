@@ -19,11 +19,9 @@ from topoclass.errors import TopoclassError
 # Small labelled sets (20–60 images per class) with a few hundred correlated features are the
 # normal case. A random forest needs no feature scaling, is insensitive to many redundant or
 # useless columns (it picks splits feature by feature) and averages 300 trees, so its
-# probabilities are smooth; on the invented demo sets (24 per class, grouped 5-fold CV, all
-# features) it gave macro-F1 0.95-0.99 with ECE 0.01-0.02, where logistic regression (C=1) gave
-# 0.94-0.96 with ECE about 0.2 even after calibration: with 244 features and ~100 images the
-# classes separate linearly and the logistic fit becomes overconfident on its mistakes.
-# Numbers from benchmarks/accuracy.md (feature sets x classifiers).
+# probabilities are smooth. A logistic fit (C=1) on a few hundred features and ~100 images
+# separates the classes linearly and becomes overconfident on its mistakes. `topoclass train
+# --select` measures the classifiers against each other on the user's own labelled set.
 DEFAULT_CLASSIFIER = "forest"
 
 

@@ -16,6 +16,7 @@ from topoclass.model.calibration import choose_calibration, fit_calibrated, limi
 from topoclass.model.conformal import DEFAULT_ALPHA, UNFAMILIAR, ReviewBand
 from topoclass.model.doubt import DoubtFade
 from topoclass.model.evaluation import CVReport, cross_validate_model, metrics_from_probabilities
+from topoclass.model.neighbours import LabelledDiagrams
 from topoclass.model.novelty import MahalanobisNovelty, NeighbourDensityNovelty, RangeNovelty
 from topoclass.model.pipeline import DEFAULT_CLASSIFIER, build_pipeline
 
@@ -50,7 +51,10 @@ class TrainedModel:
     density_check : NeighbourDensityNovelty or None
         Local-outlier check of the order measures with psi4.
     doubt : DoubtFade or None
-        The fade of the probabilities toward the prior with unfamiliarity.
+        The fade of the probabilities toward equal odds with unfamiliarity.
+    neighbours : LabelledDiagrams or None
+        H1 diagrams, labels and thumbnails of the training images, to show the labelled images
+        nearest to a scored one (:mod:`topoclass.model.neighbours`); None in older models.
     """
 
     estimator: Any
@@ -67,12 +71,13 @@ class TrainedModel:
     review_band: ReviewBand | None = None
     density_check: NeighbourDensityNovelty | None = None
     doubt: DoubtFade | None = None
+    neighbours: LabelledDiagrams | None = None
 
     def predict_proba(self, X) -> np.ndarray:
         """Calibrated probability of each class, columns in the order of ``classes``.
 
         Limited by the size of the training set (:func:`limit_by_evidence`), as in the
-        cross-validation that measured them, then faded toward the class prior as the image
+        cross-validation that measured them, then faded toward equal odds as the image
         nears the edge of the training set (:class:`DoubtFade`), when the model has the fade.
         The top class is the same either way.
         """

@@ -21,6 +21,7 @@ from topoclass.defects import (
 from topoclass.report.batch_page import (
     MAX_DETAILS,
     MAX_THUMBNAILS,
+    batch_report_paths,
     most_doubtful_first,
     write_batch_report,
 )
@@ -29,6 +30,7 @@ from topoclass.report.figures import (
     COORDINATION_COLOURS,
     DEFECT_COLOURS,
     MAX_DRAWN_DEFECTS,
+    coordination_class,
     diagram_and_barcode_figure,
     image_to_figure_pixels,
     plot_confusion,
@@ -48,9 +50,10 @@ from topoclass.report.importance import feature_family, feature_importance
 
 __all__ = [
     "CLASS_COLOURS", "COORDINATION_COLOURS", "DEFECT_COLOURS", "DEFECT_COLUMNS", "GAP_FLOOR",
-    "LOOP_FLOOR", "MAX_DETAILS", "MAX_DRAWN_DEFECTS", "defect_counts",
-    "MAX_THUMBNAILS", "diagram_and_barcode_figure", "feature_family", "feature_importance",
-    "image_to_figure_pixels", "locate_defects", "most_doubtful_first", "plot_confusion",
+    "LOOP_FLOOR", "MAX_DETAILS", "MAX_DRAWN_DEFECTS", "coordination_class", "defect_counts",
+    "MAX_THUMBNAILS", "batch_report_paths", "diagram_and_barcode_figure", "feature_family",
+    "feature_importance", "image_to_figure_pixels", "locate_defects", "most_doubtful_first",
+    "plot_confusion",
     "plot_defects", "plot_grains",
     "plot_importance", "plot_per_class", "plot_reliability", "plot_sites", "save_figure",
     "site_coordination", "write_batch_report", "write_defects_csv", "write_inspection_figures",

@@ -7,12 +7,15 @@ import csv
 import html
 import io
 import math
+import re
+import shutil
 from collections import Counter
 from pathlib import Path
 
 import numpy as np
 
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings
 from topoclass.pages import html_page
@@ -27,17 +30,32 @@ MAX_DETAILS = 200
 MAX_THUMBNAILS = 2000
 
 
+#: Scored images a batch needs for the report's control charts.
+MIN_TREND_IMAGES = 10
+
+
 _THUMB_PX = 72  # longest side of an embedded thumbnail
+
+
+def batch_report_paths(scores_csv: str | Path,
+                       out_html: str | Path | None = None) -> tuple[Path, Path]:
+    """Where the page of a ``scores.csv`` goes: ``scores.html`` and its folder ``scores_files/``.
+
+    Named after the CSV, so that two batches scored into one folder keep a page each.
+    """
+    out_html = Path(out_html) if out_html is not None else Path(scores_csv).with_suffix(".html")
+    return out_html, out_html.with_name(out_html.stem + "_files")
 
 
 def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = None, *,
                        model=None, details: int = MAX_DETAILS,
                        thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
-                       cache_dir: str | Path | None = None, progress: bool = False) -> Path:
+                       cache_dir: str | Path | None = None, overwrite: bool = False,
+                       trend_charts: bool = True, progress: bool = False) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
-    the sibling folder ``report_files/``) has the counts per class, the failed and unfamiliar
+    the sibling folder ``<page name>_files/``) has the counts per class, the failed and unfamiliar
     images first, then a table sortable by clicking a header — by each class probability and
     each order measure — with a thumbnail, the predicted class, a bar per class probability,
     the unfamiliar flag and a link to a detail view (site overlay, persistence diagram, defect
@@ -50,7 +68,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         A file written by :func:`topoclass.scoring.score_images` (a partly written file from
         a killed run is fine).
     out_html : path, optional
-        Default: ``report.html`` beside ``scores_csv``.
+        Default: the CSV's name with ``.html`` (``scores.csv`` → ``scores.html``), see
+        :func:`batch_report_paths`.
     model : TrainedModel, optional
         Supplies the site-finding settings of the detail views and the model's name.
     details : int
@@ -65,6 +84,13 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         :func:`topoclass.features.default_cache_dir`). A detail view takes the image's sites
         and diagrams from it; an image not found there is measured again, which costs as much
         as scoring it.
+    overwrite : bool
+        Replace an existing page (detail views of images no longer in the CSV are removed);
+        without it an existing page is refused.
+    trend_charts : bool
+        Add control charts of the amounts and class probabilities in the batch's order
+        (:func:`topoclass.trend.trend_table`, limits from the batch's first images), when the
+        batch has at least :data:`MIN_TREND_IMAGES` scored images.
     progress : bool
         Show a progress bar while the images are read.
 
@@ -89,9 +115,11 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
                              "by `topoclass score`")
     classes = [c[2:] for c in header if c.startswith("p_")]
     measures = [c for c in MEASURE_COLUMNS if c in header]
-    out_html = Path(out_html) if out_html is not None else scores_csv.with_name("report.html")
+    out_html, files = batch_report_paths(scores_csv, out_html)
+    if out_html.exists() and not overwrite:
+        raise TopoclassError(f"{out_html}: the report page exists; pass --overwrite to replace "
+                             "it or write the scores to a CSV of another name")
     out_html.parent.mkdir(parents=True, exist_ok=True)
-    files = out_html.parent / "report_files"
     base = scores_csv.parent
 
     ok = [r for r in rows if r.get("status") == "ok"]
@@ -104,7 +132,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
 
     work = [(n, row, _image_path(row["image"], base), n < thumbnails, id(row) in detail_ids)
             for n, row in enumerate(rows) if n < thumbnails or id(row) in detail_ids]
-    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION)
+    assets = _ImageAssets(files, out_html.name, settings, cache_dir, classes, CAUTION,
+                          neighbours=getattr(model, "neighbours", None))
     thumbs: dict[int, str] = {}
     links: dict[int, str] = {}
     for n, thumb, link in _run(assets, work, jobs, progress):
@@ -116,15 +145,52 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     # As in the scoring summary: an unfamiliar or review image's class is not counted.
     counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
                      if not _is_unfamiliar(r) and r.get("verdict") != "review")
+    trend = _trend_section(scores_csv, len(ok)) if trend_charts else ""
     page = _report_page(
-        scores_csv=scores_csv, rows=rows, classes=classes, measures=measures, counts=counts,
+        trend=trend, scores_csv=scores_csv, rows=rows, classes=classes, measures=measures,
+        counts=counts,
         failed=failed, unfamiliar=unfamiliar, review=review, thumbs=thumbs, links=links,
         details=details, thumbnails=thumbnails, model=model, caution=CAUTION,
     )
     tmp = out_html.with_name(out_html.name + ".tmp")
     tmp.write_text(page, encoding="utf-8")
     tmp.replace(out_html)
+    _drop_stale_details(files, keep={link.split("/")[1] for link in links.values()})
     return out_html
+
+
+def _trend_section(scores_csv: Path, n_ok: int) -> str:
+    """Control charts of this batch in file order, or a line saying why there are none."""
+    from topoclass.trend import TREND_CAUTION, read_score_tables, trend_svg, trend_table
+
+    head = "<h2 id='trend'>Over the batch</h2>"
+    if n_ok < MIN_TREND_IMAGES:
+        return (head + f"<p class='note'>{n_ok} scored images: control charts need at least "
+                f"{MIN_TREND_IMAGES}; chart several batches with <code>topoclass trend</code>."
+                "</p>")
+    baseline = min(20, n_ok)
+    try:
+        result = trend_table(read_score_tables([scores_csv]), baseline=baseline)
+    except TopoclassError as exc:
+        return head + f"<p class='note'>No control charts: {html.escape(str(exc))}</p>"
+    flagged = int(result.table["flagged"].sum())
+    return (head + f"<p class='note'>Individuals charts in the order of the scores file; "
+            f"limits (dashed) from its first {baseline} images, so they describe this batch "
+            f"only — for limits from accepted batches use <code>topoclass trend "
+            f"--reference</code>. {flagged} of {len(result.table)} images fired a run rule "
+            f"(larger dots; hover for the image). {html.escape(TREND_CAUTION)}</p>"
+            f"<div class='trend'>{trend_svg(result)}</div>")
+
+
+def _drop_stale_details(files: Path, keep: set[str]) -> None:
+    """Remove detail folders this page does not link (left by an earlier batch of that name)."""
+    if not files.is_dir():
+        return
+    for folder in files.iterdir():
+        # Only folders named as _ImageAssets._folder names them: nothing else is ours.
+        if folder.is_dir() and folder.name not in keep and re.fullmatch(r"\d{5}-\w+",
+                                                                          folder.name):
+            shutil.rmtree(folder)
 
 
 def _csv_header(path: Path) -> list[str]:
@@ -186,12 +252,16 @@ def _run(assets, work: list, jobs: int, progress: bool):
 class _ImageAssets:
     """Thumbnail and detail view of one image (picklable, for the worker pool)."""
 
-    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution):
+    def __init__(self, files: Path, page_name: str, settings, cache_dir, classes, caution, *,
+                 neighbours=None):
         self.files, self.page_name, self.settings = files, page_name, settings
         self.cache_dir, self.classes, self.caution = cache_dir, classes, caution
+        self.neighbours = neighbours  # the model's labelled training diagrams, if it keeps them
+        self.owner = pool_owner()
 
     def __call__(self, n: int, row: dict, path: Path, thumb: bool, detail: bool
                  ) -> tuple[int, str, str]:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         from topoclass.features import cached_measurement, measure_image
         from topoclass.images import read_micrograph
 
@@ -237,11 +307,30 @@ class _ImageAssets:
             f"<table class='small'><tr><th>class</th><th>probability</th></tr>{probs}</table>"
             f"<p class='caution'>{html.escape(self.caution)}</p>"
             f"{pictures}"
+            f"{_nearest_html(self.neighbours, diagrams.h1)}"
             f"<p><a href='../../{html.escape(self.page_name)}'>back to the report</a></p>"
         )
         title = f"topoclass — {Path(row['image']).name}"
         (folder / "index.html").write_text(html_page(title, body), encoding="utf-8")
         return f"{self.files.name}/{folder.name}/index.html"
+
+
+def _nearest_html(neighbours, h1) -> str:
+    """The three labelled training images nearest to this one, with thumbnails."""
+    if neighbours is None or len(neighbours) == 0:
+        return ""
+    cells = []
+    for n in neighbours.nearest(h1, k=3):
+        thumb = _thumbnail(neighbours.thumbnails[n["index"]] / 255.0)
+        cells.append(
+            f"<figure class='nearest'><img src='{thumb}' alt='training image "
+            f"{html.escape(Path(n['image']).name)}'><figcaption><b>{html.escape(n['label'])}"
+            f"</b> — distance {n['distance']:.3g}<br>{html.escape(Path(n['image']).name)}"
+            "</figcaption></figure>")
+    return ("<h2>Nearest labelled images</h2><p>The training images whose H1 persistence "
+            "diagrams are closest to this one (sliced Wasserstein distance, spacing units), "
+            "with their labels: a way to see what the score is built on, not a second "
+            "score.</p>" + "".join(cells))
 
 
 def _thumbnail(image: np.ndarray) -> str:
@@ -286,7 +375,7 @@ def _is_unfamiliar(row) -> bool:
     return row.get("unfamiliar") == "yes" or row.get("verdict") == "unfamiliar"
 
 
-def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
+def _report_page(*, trend, scores_csv, rows, classes, measures, counts, failed, unfamiliar, review,
                  thumbs,
                  links, details, thumbnails, model, caution) -> str:
     colour = {c: CLASS_COLOURS[k % len(CLASS_COLOURS)] for k, c in enumerate(classes)}
@@ -394,6 +483,7 @@ def _report_page(*, scores_csv, rows, classes, measures, counts, failed, unfamil
         body.append(f"<tr class='{klass}'>" + "".join(cells) + "</tr>")
     parts.append("<table id='scores' class='sortable'><thead><tr>" + "".join(head)
                  + "</tr></thead><tbody>" + "".join(body) + "</tbody></table>")
+    parts.append(trend)
     parts.append(f"<p class='note'>Made by topoclass from {esc(scores_csv.name)}. Order "
                  "measures: persistence values in units of the site spacing.</p>")
     return html_page("topoclass batch report", "".join(parts), scripts=("sortable.js",))

@@ -24,6 +24,7 @@ from topoclass.report.figures import (
     COORDINATION_COLOURS,
     DEFECT_COLOURS,
     MAX_DRAWN_DEFECTS,
+    coordination_class,
     site_coordination,
 )
 from topoclass.sites import SitePattern
@@ -98,7 +99,7 @@ def _dots(xy: np.ndarray) -> str:
 
 def _sites_svg(pattern: SitePattern) -> str:
     coord = site_coordination(pattern)
-    label = np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
+    label = coordination_class(coord)
     r = 0.21 * pattern.spacing
     width = 0.06 * pattern.spacing
     groups, legend = [], []

@@ -78,9 +78,9 @@ def plot_sites(image: np.ndarray, pattern: SitePattern) -> Figure:
     fig, ax, scale = _image_figure(image, legend_rows=1)
     coord = site_coordination(pattern)
     size = _marker_area(pattern.spacing * scale, 0.42)
-    handles = []
+    handles = _show_region(ax, pattern)
     for label, colour in COORDINATION_COLOURS.items():
-        members = _coordination_class(coord) == label
+        members = coordination_class(coord) == label
         inner, outer = members & ~pattern.border, members & pattern.border
         if inner.any():
             ax.scatter(pattern.xy[inner, 0], pattern.xy[inner, 1], s=size, c=colour,
@@ -297,6 +297,13 @@ def site_coordination(pattern: SitePattern) -> np.ndarray:
     return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
 
 
+def coordination_class(coord: np.ndarray) -> np.ndarray:
+    """The key of :data:`COORDINATION_COLOURS` for each Delaunay coordination (``≤4``, ``5``,
+    ``6``, ``7``, ``≥8``)."""
+    coord = np.asarray(coord)
+    return np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
+
+
 def image_to_figure_pixels(shape: tuple[int, int]) -> tuple[float, int]:
     """Scale factor and legend-strip height (pixels) of the image pictures.
 
@@ -379,18 +386,26 @@ def plot_per_class(metrics: dict, *, title: str = "Per class") -> Figure:
 
 def plot_importance(importance: dict, *, top: int = 15,
                     title: str = "Most important features (permutation, log-loss)") -> Figure:
-    """Horizontal bars of the ``top`` largest permutation importances, with their spread."""
-    mean = np.asarray(importance["importances_mean"])
-    std = np.asarray(importance["importances_std"])
+    """Horizontal bars of the ``top`` largest mean permutation importances; every repeat is
+    drawn as a dot on its bar, so the spread is seen, not summarised."""
+    scores = np.atleast_2d(np.asarray(importance["importances"], dtype=float))
+    mean = scores.mean(axis=1)
     order = np.argsort(-mean, kind="stable")[:top]
     names = [str(importance["names"][k]) for k in order]
-    fig = Figure(figsize=(7.5, 1.2 + 0.3 * len(order)), dpi=100, layout="constrained")
+    fig = Figure(figsize=(7.5, 1.4 + 0.3 * len(order)), dpi=100, layout="constrained")
     ax = fig.subplots()
     y = np.arange(len(order))[::-1]
-    ax.barh(y, mean[order], xerr=std[order], color=CLASS_COLOURS[0], ecolor="0.3",
-            capsize=2)
-    ax.set(yticks=y, yticklabels=names, xlabel="increase of the log-loss when permuted",
-           title=title)
+    ax.barh(y, mean[order], color=CLASS_COLOURS[0], alpha=0.6, label="mean")
+    jitter = np.linspace(-0.25, 0.25, scores.shape[1]) if scores.shape[1] > 1 else [0.0]
+    for row, k in zip(y, order, strict=True):
+        ax.plot(scores[k], row + np.asarray(jitter), ls="none", marker="o", ms=2.5,
+                color="0.15")
+    how = ("each image took values from another sample group"
+           if importance.get("across_groups") else "values permuted among all images")
+    ax.set(yticks=y, yticklabels=names,
+           xlabel=f"increase of the log-loss when permuted — dots: {scores.shape[1]} repeats "
+                  f"({how})", title=title)
+    ax.xaxis.label.set_size(8)
     ax.axvline(0, color="0.3", lw=0.6)
     ax.tick_params(axis="y", labelsize=8)
     return fig
@@ -419,29 +434,34 @@ def write_metric_figures(metrics: dict, out: str | Path, *, prefix: str = "",
     return paths
 
 
-def write_training_figures(model, out: str | Path, X=None, y=None, *, top: int = 15,
-                           n_repeats: int = 3, seed: int = 0) -> list[Path]:
+def write_training_figures(model, out: str | Path, X=None, y=None, *, groups=None,
+                           top: int = 15, n_repeats: int = 10, seed: int = 0) -> list[Path]:
     """Cross-validation figures of a trained model, and its feature importance when X, y given.
 
     Writes ``cv_confusion``, ``cv_reliability``, ``cv_per_class`` and ``importance`` (PNG and
-    SVG) and ``importance.csv`` (every feature, by decreasing importance). Returns the PNG and
-    CSV paths.
+    SVG) and ``importance.csv`` (every feature family, by decreasing mean importance, with its
+    spread over the repeats). ``groups`` (sample group of each image) makes the permutations
+    cross sample groups (:func:`feature_importance`). Returns the PNG and CSV paths.
     """
     out = Path(out)
     paths = write_metric_figures(model.cv_report.metrics, out, prefix="cv_",
                                  title="cross-validation")
     if X is not None and y is not None:
-        imp = feature_importance(model, X, y, n_repeats=n_repeats, seed=seed, grouped=True)
+        imp = feature_importance(model, X, y, groups=groups, n_repeats=n_repeats, seed=seed,
+                                 grouped=True)
         fig = plot_importance(imp, top=top)
         save_figure(fig, out / "importance.png", svg=True)
         csv_path = out / "importance.csv"
         order = np.argsort(-imp["importances_mean"], kind="stable")
         with open(csv_path, "w", newline="", encoding="utf-8") as fh:
             w = csv.writer(fh, lineterminator="\n")
-            w.writerow(["feature", "importance_mean", "importance_std"])
+            w.writerow(["feature", "importance_mean", "importance_std", "importance_min",
+                        "importance_max", "repeats"])
             for k in order:
-                w.writerow([imp["names"][k], f"{imp['importances_mean'][k]:.6g}",
-                            f"{imp['importances_std'][k]:.6g}"])
+                w.writerow([imp["names"][k]]
+                           + [f"{imp[key][k]:.6g}" for key in ("importances_mean",
+                              "importances_std", "importances_min", "importances_max")]
+                           + [imp["n_repeats"]])
         paths += [out / "importance.png", csv_path]
     return paths
 
@@ -463,6 +483,28 @@ def _image_figure(image: np.ndarray, *, legend_rows: int = 1):
     return fig, ax, scale
 
 
+def _show_region(ax, pattern: SitePattern) -> list:
+    """Darken what was left out of the analysis and outline the analysed region.
+
+    Returns the legend handle for the outline (none when the whole frame was analysed).
+    """
+    from matplotlib.patches import Rectangle
+
+    rows, cols = pattern.shape
+    x0, y0, x1, y1 = pattern.frame
+    if (x0, y0, x1, y1) == (0, 0, cols, rows):
+        return []
+    outside = np.ones((rows, cols), dtype=bool)
+    outside[y0:y1, x0:x1] = False
+    veil = np.zeros((rows, cols, 4))
+    veil[outside] = (0.0, 0.0, 0.0, 0.6)
+    ax.imshow(veil, interpolation="nearest", extent=(-0.5, cols - 0.5, rows - 0.5, -0.5))
+    for colour, width, style in (("black", 2.4, "-"), ("white", 1.2, "--")):
+        ax.add_patch(Rectangle((x0 - 0.5, y0 - 0.5), x1 - x0, y1 - y0, fill=False,
+                               edgecolor=colour, linewidth=width, linestyle=style))
+    return [Line2D([], [], color="black", lw=1.2, ls="--", label="analysed region")]
+
+
 def _marker_area(diameter_px: float, fraction: float) -> float:
     """Scatter marker area (points²) of a disc ``fraction`` of ``diameter_px`` across."""
     points = max(diameter_px * fraction, 2.0) * 72.0 / 100.0
@@ -473,11 +515,6 @@ def _circle(centre, radius, colour, lw):
     from matplotlib.patches import Circle
 
     return Circle(centre, radius, fill=False, edgecolor=colour, lw=lw)
-
-
-def _coordination_class(coord: np.ndarray) -> np.ndarray:
-    labels = np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
-    return labels
 
 
 def save_figure(fig: Figure, path: Path, *, svg: bool = False) -> None:

@@ -1,4 +1,5 @@
-"""Permutation importance of a trained model's features, column by column or by family."""
+"""Permutation importance of a trained model's features, column by column or by family,
+on the model as it ships and with permutations that cross sample groups."""
 
 from __future__ import annotations
 
@@ -10,7 +11,7 @@ import numpy as np
 from topoclass.errors import TopoclassError
 
 
-def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0,
+def feature_importance(model, X, y, *, groups=None, n_repeats: int = 10, seed: int = 0,
                        grouped: bool = False) -> dict:
     """Permutation importance of the model's feature columns (log-loss), readable names.
 
@@ -18,18 +19,30 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0,
     feature step. Each calibrated member of the ensemble has its own fitted feature step;
     column ``j`` is permuted the same way in every member's transformed matrix and the rest of
     each member's pipeline (imputation, scaling, classifier, calibrator) scores the result,
-    averaged over the members as the model itself averages them. The permutations, repeats
-    and scoring are those of :func:`sklearn.inspection.permutation_importance` (Breiman 2001),
-    which is called on a matrix of row indices that picks the permuted values.
+    averaged over the members as the model itself averages them. A
+    :class:`~topoclass.model.TrainedModel` is scored as it ships: its probabilities are then
+    bounded by the size of the labelled set (:func:`~topoclass.model.limit_by_evidence`), so
+    no permutation can cost more log-loss than that bound allows. (The model's fade toward the
+    prior with unfamiliarity is left out on purpose: it answers how far an image is from the
+    training set, not which features carry the class.)
+
+    Without ``groups`` the permutations, repeats and scoring are those of
+    :func:`sklearn.inspection.permutation_importance` (Breiman 2001), which is called on a
+    matrix of row indices that picks the permuted values. With ``groups``, every image takes
+    the values of an image of *another* sample group (:func:`_cross_group_permutation`):
+    images of one sample are near-copies, so a plain permutation that leaves a value within
+    its sample changes little and would understate what the model relies on; the same
+    reasoning keeps a sample on one side of every cross-validation split.
 
     Parameters
     ----------
     model : TrainedModel or fitted scikit-learn classifier
-        A :class:`~topoclass.model.TrainedModel` (its ``estimator``), a fitted
-        ``CalibratedClassifierCV`` over a pipeline whose first step is the feature step, or
-        such a pipeline itself.
+        A :class:`~topoclass.model.TrainedModel`, a fitted ``CalibratedClassifierCV`` over a
+        pipeline whose first step is the feature step, or such a pipeline itself.
     X, y
         Training inputs (as the feature step takes them) and labels.
+    groups : array-like or None
+        Sample group of each image; permutations then move values across groups only.
     n_repeats, seed
         Permutations per column and their seed.
     grouped : bool
@@ -43,16 +56,20 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0,
 
     Returns
     -------
-    dict with ``names`` (feature names), ``importances_mean``, ``importances_std`` and
-    ``importances`` (n_features, n_repeats): drop of the negative log-loss when the column is
-    permuted (larger = more important), ``baseline_log_loss``.
+    dict with ``names`` (feature names), ``importances`` (n_features, n_repeats): increase
+    of the log-loss when the column is permuted (larger = more important), their
+    ``importances_mean``, ``importances_std``, ``importances_min`` and ``importances_max``
+    over the repeats, ``baseline_log_loss``, ``n_repeats`` and ``across_groups``.
     """
     from sklearn.inspection import permutation_importance
 
+    if n_repeats < 1:
+        raise ValueError(f"n_repeats must be at least 1, got {n_repeats}")
     # A TrainedModel wraps the fitted estimator; a CalibratedClassifierCV's own ``estimator``
     # is its unfitted template, so it is used as it stands.
     fitted = hasattr(model, "calibrated_classifiers_") or hasattr(model, "steps")
     estimator = model if fitted else model.estimator
+    bound = None if fitted else int(model.settings["n_samples"])
     members = getattr(estimator, "calibrated_classifiers_", None)
     if members is None:
         pipes, rests = [estimator], [estimator[1:]]
@@ -74,14 +91,53 @@ def feature_importance(model, X, y, *, n_repeats: int = 3, seed: int = 0,
         unique = list(dict.fromkeys(families))
         column_group = np.array([unique.index(f) for f in families])
         names = unique
-    wrapper = _PermutedColumns(mats, rests, estimator.classes_, column_group)
-    index = np.repeat(np.arange(mats[0].shape[0])[:, None], len(names), axis=1)
-    result = permutation_importance(wrapper, index, np.asarray(y), scoring="neg_log_loss",
-                                    n_repeats=n_repeats, random_state=seed)
-    baseline = -_neg_log_loss(wrapper, index, np.asarray(y))
-    return {"names": names, "importances_mean": result.importances_mean,
-            "importances_std": result.importances_std, "importances": result.importances,
-            "baseline_log_loss": baseline}
+    wrapper = _PermutedColumns(mats, rests, estimator.classes_, column_group, bound=bound)
+    n_rows = mats[0].shape[0]
+    index = np.repeat(np.arange(n_rows)[:, None], len(names), axis=1)
+    y = np.asarray(y)
+    baseline = -_neg_log_loss(wrapper, index, y)
+    across = groups is not None and np.unique(np.asarray(groups)).shape[0] > 1
+    if not across:
+        result = permutation_importance(wrapper, index, y, scoring="neg_log_loss",
+                                        n_repeats=n_repeats, random_state=seed)
+        scores = result.importances
+    else:
+        groups = np.asarray(groups)
+        if groups.shape[0] != n_rows:
+            raise ValueError(f"groups has {groups.shape[0]} entries for {n_rows} images")
+        rng = np.random.default_rng(seed)
+        scores = np.empty((len(names), n_repeats))
+        for r in range(n_repeats):
+            source = _cross_group_permutation(groups, rng)
+            for j in range(len(names)):
+                permuted = index.copy()
+                permuted[:, j] = source
+                scores[j, r] = -_neg_log_loss(wrapper, permuted, y) - baseline
+    return {"names": names, "importances": scores,
+            "importances_mean": scores.mean(axis=1), "importances_std": scores.std(axis=1),
+            "importances_min": scores.min(axis=1), "importances_max": scores.max(axis=1),
+            "baseline_log_loss": baseline, "n_repeats": n_repeats, "across_groups": across}
+
+
+def _cross_group_permutation(groups: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """A permutation of the rows in which no row takes a row of its own group, when possible.
+
+    The rows are laid out group after group (groups in random order, rows shuffled within
+    each), and every row takes the row ``shift`` places further on, cyclically. A shift of at
+    least the largest group's size and at most ``n`` minus it always lands in another group.
+    When one group holds more than half of the rows no such shift exists; the largest
+    admissible one is used and some rows of that group stay within it.
+    """
+    n = groups.shape[0]
+    labels, inverse = np.unique(groups, return_inverse=True)
+    order = rng.permutation(labels.shape[0])
+    layout = np.concatenate([rng.permutation(np.flatnonzero(inverse == g)) for g in order])
+    largest = int(np.bincount(inverse).max())
+    low, high = largest, n - largest
+    shift = int(rng.integers(low, high + 1)) if high >= low else max(high, 1)
+    source = np.empty(n, dtype=np.int64)
+    source[layout] = layout[(np.arange(n) + shift) % n]
+    return source
 
 
 def feature_family(name: str) -> str:
@@ -120,8 +176,9 @@ class _PermutedColumns:
 
     _estimator_type = "classifier"
 
-    def __init__(self, mats, rests, classes, column_group=None):
+    def __init__(self, mats, rests, classes, column_group=None, bound=None):
         self.mats, self.rests, self.classes_ = mats, rests, np.asarray(classes)
+        self.bound = bound  # size of the labelled set when probabilities are limited by it
         # Input column g permutes every feature column c with column_group[c] == g.
         width = mats[0].shape[1]
         self.column_group = np.arange(width) if column_group is None else column_group
@@ -145,7 +202,12 @@ class _PermutedColumns:
         for mat, rest in zip(self.mats, self.rests, strict=True):
             proba = rest.predict_proba(mat[index, cols])
             total = proba if total is None else total + proba
-        return total / len(self.mats)
+        total = total / len(self.mats)
+        if self.bound is not None:
+            from topoclass.model.calibration import limit_by_evidence
+
+            total = limit_by_evidence(total, self.bound)
+        return total
 
     def predict(self, index) -> np.ndarray:
         return self.classes_[np.argmax(self.predict_proba(index), axis=1)]
