@@ -71,11 +71,12 @@ def labelled_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray | None, list[RecordResult]]:
     """Pattern records of a label set's images; failed images are left out and returned apart."""
     results = measure_patterns(
         labels.images, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-        description="features",
+        description="features", engine=engine,
     )
     keep = [i for i, r in enumerate(results) if r.ok]
     failures = [r for r in results if not r.ok]
@@ -93,6 +94,7 @@ def zoomed_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray, int]:
     """Records of rescaled copies of a label set's images (:mod:`topoclass.augment`).
 
@@ -106,6 +108,7 @@ def zoomed_records(
     results = measure_patterns(
         paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
         description="zoomed copies", zooms=[f for _ in labels.images for f in factors],
+        engine=engine,
     )
     owner = [i for i in range(len(labels.images)) for _ in factors]
     keep = [k for k, r in enumerate(results) if r.ok]
@@ -135,6 +138,7 @@ def train_from_labels(
     zoom_range: tuple[float, float] | None = None,
     zoom_copies: int = 3,
     overwrite: bool = False,
+    engine=None,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -168,15 +172,18 @@ def train_from_labels(
     alpha : float
         Error rate of the review band (:class:`topoclass.model.ReviewBand`).
     zoom_range : (lo, hi), optional
-        Also train on ``zoom_copies`` rescaled copies of every image at zoom factors spread
-        over this range (:mod:`topoclass.augment`), so the model covers those spacings in
-        pixels; the card records the range and the spacings reached.
+        Also train on rescaled copies of every image at ``zoom_copies`` zoom factors spread
+        over this range (:func:`topoclass.augment.zoom_factors`; a factor of 1 is the original
+        and adds no copy), so the model covers those spacings in pixels; the card records the
+        range and the spacings reached.
     zoom_copies : int
-        Copies per image with ``zoom_range``.
+        Zoom factors with ``zoom_range``.
     overwrite : bool
         Replace a model already in ``model_dir``: once the new model is trained, every file
         of the old one (its validation report too) is removed. Without it an existing model
         folder is refused, before any work.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure the images on a Dask cluster (``jobs`` is then ignored); the model is the same.
     """
     check_alpha(alpha)
     if model_dir is not None:
@@ -190,7 +197,7 @@ def train_from_labels(
     settings = settings or FeatureSettings()
     labels = read_labels(labels_source, n_folds=cv)
     records, y, groups, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
@@ -202,7 +209,8 @@ def train_from_labels(
 
         factors = zoom_factors(zoom_range, zoom_copies)
         extra, y_extra, g_extra, n_lost = zoomed_records(
-            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress
+            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress,
+            engine=engine,
         )
         if groups is None:  # the image is the group: its copies must not cross a split
             ok = {str(p) for p in labels.images} - {str(r.path) for r in failures}
@@ -283,6 +291,7 @@ def validate_from_labels(
     cache_dir: str | Path | None = None,
     progress: bool = False,
     overrides: dict | None = None,
+    engine=None,
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
@@ -291,7 +300,7 @@ def validate_from_labels(
     report already in ``out`` is removed first, so that a failed run never leaves one that
     describes another model or another set; the report names the model file's hash.
     ``overrides`` replaces fields of the model's :class:`FeatureSettings` (for example the
-    region rule).
+    region rule); ``engine`` measures the images on a Dask cluster (:mod:`topoclass.cluster`).
     """
     model = load_model(model_dir)
     out = Path(out) if out is not None else Path(model_dir)
@@ -299,7 +308,7 @@ def validate_from_labels(
     labels = read_labels(labels_source)
     settings = dataclasses.replace(FeatureSettings.from_model(model), **(overrides or {}))
     records, y, _, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if not records:
         raise LabelSheetError(
@@ -322,12 +331,38 @@ def validate_from_labels(
     from topoclass.report import write_metric_figures
 
     write_metric_figures(metrics, out, prefix="validation_", title="validation")
+    _write_validation_rows(out / "validation.csv", model, labels, records, failures)
     return ValidationRun(metrics=metrics, report=report, failures=failures)
 
 
 #: What :func:`validate_from_labels` writes (``write_metric_figures`` with its prefix).
-_VALIDATION_FILES = ("validation.md", *(f"validation_{name}.{ext}" for name in
+_VALIDATION_FILES = ("validation.md", "validation.csv", *(f"validation_{name}.{ext}" for name in
                      ("confusion", "reliability", "per_class") for ext in ("png", "svg")))
+
+
+def _write_validation_rows(path: Path, model, labels: LabelSet, records, failures) -> None:
+    """One row per held-out image: its label, the model's call, and the sheet's other columns."""
+    import csv
+
+    classes = [str(c) for c in model.classes]
+    proba, unfamiliarity, _ = model.assess(records)
+    failed = {str(r.path): r for r in failures}
+    columns = ["image", "label", "status", "predicted", "confidence",
+               *(f"p_{c}" for c in classes), "unfamiliar", *labels.extra, "message"]
+    measured = iter(zip(proba, unfamiliarity, strict=True))
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(columns)
+        for i, (image, label) in enumerate(zip(labels.images, labels.labels, strict=True)):
+            notes = [values[i] for values in labels.extra.values()]
+            if str(image) in failed:  # measured in sheet order, failures left out
+                writer.writerow([image, label, "error", "", "", *([""] * len(classes)), "",
+                                 *notes, failed[str(image)].error or ""])
+                continue
+            p, u = next(measured)
+            best = int(np.argmax(p))
+            writer.writerow([image, label, "ok", classes[best], f"{p[best]:.6g}",
+                             *(f"{v:.6g}" for v in p), "yes" if u > 1.0 else "no", *notes, ""])
 
 
 def _remove_validation_report(out: Path) -> None:
@@ -378,6 +413,8 @@ def _check_after_failures(labels, y, groups, cv, failures) -> None:
         raise LabelSheetError(
             f"{labels.source}: too few usable images after {len(failures)} failed: "
             + "; ".join(problems)
+            + "; fix or replace the failed images (each message says why) or label more "
+            "images of those classes"
         )
 
 
