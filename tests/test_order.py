@@ -218,6 +218,10 @@ def test_bad_patterns_get_a_pattern_error_naming_the_file():
         order_measures(_pattern(edge, (6, 6), 5.0, source="pores_4.tif"))
     with pytest.raises(PatternError, match="too few"):
         delaunay_neighbours(np.zeros((2, 2)))
+    # The only interior site is a corner of the convex hull: its Voronoi cell is unbounded.
+    hull = np.array([[5.0, 5.0], [95.0, 5.0], [50.0, 50.0], [30.0, 6.0], [70.0, 7.0]])
+    with pytest.raises(PatternError, match="pores_5.tif.*bounded Voronoi cell"):
+        order_measures(_pattern(hull, (100, 100), 10.0, source="pores_5.tif"))
 
 
 @pytest.mark.parametrize("angle", [0.0, 17.0, 45.0])

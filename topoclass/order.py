@@ -100,6 +100,11 @@ def order_measures(pattern: SitePattern, *, clark_evans_edge: str = "cells") -> 
     psi4_in = psi4(xy)[interior]
     nn_mean = float(nn.mean())
     if clark_evans_edge == "cells":
+        cells = pattern.delaunay.cell_area[interior]
+        if not np.any(np.isfinite(cells) & (cells > 0)):
+            raise PatternError(f"{name}: every interior site lies on the outline of the pattern "
+                               "(no bounded Voronoi cell), so there is no region to measure the "
+                               "density in; check the site finding of this image")
         r = clark_evans_interior(xy, interior, pattern.delaunay.cell_area, nn=nn)
     else:
         r = clark_evans(xy, area, perimeter=2.0 * ((x1 - x0) + (y1 - y0)))
