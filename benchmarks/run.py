@@ -727,6 +727,8 @@ def main(argv=None) -> int:
                         help="smaller sizes and fewer repeats (about 5 minutes on 2 cores)")
     parser.add_argument("--json", action="store_true", help="print one JSON object only")
     parser.add_argument("--rss-child", help=argparse.SUPPRESS)
+    parser.add_argument("--mapping", action="store_true", help="also run bench_mapping.py "
+                        "(maps of 16-144 MP images, tens of minutes; --quick: 4-16 MP)")
     args = parser.parse_args(argv)
     if args.rss_child:
         _rss_child(args.rss_child)
@@ -756,6 +758,10 @@ def main(argv=None) -> int:
         ACCURACY.write_text(accuracy_markdown(accuracy), encoding="utf-8")
         _update_readme(results)
         log(f"wrote {RESULTS}, {ACCURACY} and the accuracy block of {README}")
+    if args.mapping:
+        import bench_mapping
+
+        bench_mapping.main(["--quick"] if args.quick else [])
     return 0 if results["all_pass"] else 1
 
 

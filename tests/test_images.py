@@ -471,6 +471,7 @@ def test_size_limit_checked_before_decoding(tmp_path, monkeypatch):
         with pytest.raises(ImageReadError, match="--max-pixels") as excinfo:
             read_micrograph(path, max_pixels=1000)
         _assert_one_line_naming(excinfo, path)
+        assert "max_pixels=" not in str(excinfo.value)  # the option a user can pass, only
 
 
 def test_size_limit_can_be_raised(tmp_path):

@@ -110,8 +110,7 @@ def test_partial_sheets_read_but_training_still_checks(tmp_path):
     (tmp_path / "a.png").write_bytes(b"")
     sheet.write_text("image,label,note\na.png,ordered,x\n", encoding="utf-8")
     assert read_labels(sheet, partial=True).labels == ("ordered",)
-    with pytest.raises(LabelSheetError, match="unknown column 'note'"):
-        read_labels(sheet)
+    assert read_labels(sheet, partial=True).extra == {"note": ("x",)}  # kept as a note
     sheet.write_text("image,label\na.png,ordered\n", encoding="utf-8")
     with pytest.raises(LabelSheetError, match="only one class"):
         read_labels(sheet)

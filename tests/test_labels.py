@@ -169,7 +169,7 @@ def test_write_labels_length_mismatch(tmp_path):
         ("image,label\nscans/m0.tif,a\nscans/m1.tif,\n", "line 3: empty label"),
         ("image,label\nscans/m0.tif,a\n,b\n", "line 3: empty image"),
         ("image\nscans/m0.tif\n", "missing required column 'label'"),
-        ("image,label,colour\nscans/m0.tif,a,red\n", "unknown column 'colour'"),
+        ("image,label,\nscans/m0.tif,a,red\nscans/m1.tif,b,\n", "a column has no name"),
         ("image,label\nscans/m0.tif,a\nscans/m1.tif,a\n", "only one class ('a')"),
         ("image,label,group\nscans/m0.tif,a,g\nscans/m1.tif,b,\n", "line 3: empty group"),
         ("image,label\nscans/m0.tif,a,extra\n", "line 2: 3 cells"),
@@ -192,12 +192,23 @@ def test_each_problem_is_named(tmp_path, scans, text, expected):
     assert "\n" not in message
 
 
-def test_unknown_column_lists_allowed_ones(tmp_path, scans):
+def test_misnamed_required_column_is_named(tmp_path, scans):
     with pytest.raises(LabelSheetError) as excinfo:
         read_labels(_sheet(tmp_path, "file,label\nscans/m0.tif,a\n"))
     message = str(excinfo.value)
-    assert "unknown column 'file'" in message and "image, label, group" in message
-    assert "missing required column 'image'" in message
+    assert "missing required column 'image'" in message and "image,label[,group]" in message
+    assert "'file' would be kept as notes" in message
+
+
+def test_other_columns_are_kept_for_the_outputs(tmp_path, scans):
+    text = ("image,label,Operator,date\nscans/m0.tif,a,lena,2026-03-02\n"
+            "scans/m1.tif,b,,2026-03-03\n")
+    labels = read_labels(_sheet(tmp_path, text))
+    assert labels.labels == ("a", "b")
+    assert labels.extra == {"operator": ("lena", ""), "date": ("2026-03-02", "2026-03-03")}
+    with pytest.raises(LabelSheetError, match="'date' appears more than once"):
+        read_labels(_sheet(tmp_path, "image,label,date,date\nscans/m0.tif,a,1,2\n"
+                           "scans/m1.tif,b,3,4\n"))
 
 
 def test_not_utf8_says_save_as_utf8(tmp_path, scans):
@@ -222,6 +233,20 @@ def test_too_few_images_per_class_for_the_folds(tmp_path, scans):
         read_labels(path, n_folds=3)
     (problem,) = _problems(excinfo)
     assert "class 'b' has 2 images, fewer than the 3" in problem
+    assert "label 1 more image of 'b', or use --cv 2" in problem
+
+
+def test_with_two_folds_the_advice_is_to_label_more(tmp_path, scans):
+    # Two folds is the least there is: the advice must not be "use fewer folds".
+    text = "image,label,group\n" + "".join(
+        f"scans/m{i}.tif,{'a' if i < 4 else 'b'},{'m' + str(i) if i < 4 else 'n'}\n"
+        for i in range(6))
+    with pytest.raises(LabelSheetError) as excinfo:
+        read_labels(_sheet(tmp_path, text), n_folds=2)
+    (problem,) = _problems(excinfo)
+    assert "class 'b' has 1 group, fewer than the 2" in problem
+    assert "label images of 1 more sample (groups) of 'b'" in problem
+    assert "fewer folds cannot help" in problem and "use --cv" not in problem
 
 
 def test_too_few_groups_per_class_for_the_folds(tmp_path, scans):

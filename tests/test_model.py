@@ -429,6 +429,10 @@ def test_range_check_flags_values_beyond_the_training_range_and_says_which():
     assert np.all(check.score(outside) > 1.0)
     reasons = check.reasons(outside)
     assert "x0" in reasons[0][0] and "x1" in reasons[1][0] and check.reasons(inside) == [[], []]
+    # The message shows the range actually applied (the training range widened by 25 %),
+    # beside the training range itself.
+    assert (f"accepted range {lo[0] / 1.25:.3g}-{hi[0] * 1.25:.3g} (training range "
+            f"{lo[0]:.3g}-{hi[0]:.3g} widened by 25%)") in reasons[0][0]
     assert np.all(check.score(np.array([[0.0, 1.1], [np.nan, 1.1]])) == np.inf)
 
 

@@ -81,6 +81,29 @@ def test_validation_report_names_its_model_and_none_survives_a_failed_run(
     assert not (out / "validation_confusion.png").exists()
 
 
+def test_validation_rows_carry_the_sheet_s_other_columns(small_model, small_dataset,
+                                                          feature_cache, tmp_path):
+    from topoclass.labels import read_labels
+    from topoclass.scoring import read_scores
+
+    held = read_labels(small_dataset)
+    sheet = tmp_path / "held-out.csv"
+    lines = ["image,label,group,operator,date"]
+    for k, (image, label, group) in enumerate(zip(held.images, held.labels, held.groups,
+                                                  strict=True)):
+        lines.append(f"{image},{label},{group},op{k % 3},2026-03-{1 + k % 28:02d}")
+    sheet.write_text("\n".join(lines) + "\n")
+    run = validate_from_labels(small_model.directory, sheet, out=tmp_path / "v",
+                               cache_dir=feature_cache)
+    rows = read_scores(tmp_path / "v" / "validation.csv")
+    assert [r["image"] for r in rows] == [str(p) for p in held.images]
+    assert [r["operator"] for r in rows] == [f"op{k % 3}" for k in range(len(rows))]
+    assert rows[5]["date"] == "2026-03-06"
+    # The rows agree with the metrics: as many right calls as the accuracy says.
+    right = sum(r["predicted"] == r["label"] for r in rows)
+    assert right == round(run.metrics["accuracy"] * len(rows))
+
+
 def test_cli_train_into_existing_model_is_one_line_exit_2(old_model, tmp_path):
     env = {**os.environ, "PYTHONPATH": str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", "")}
     done = subprocess.run([sys.executable, "-m", "topoclass", "train", str(tmp_path / "x.csv"),

@@ -287,3 +287,24 @@ def test_training_with_zoom_range_records_it_and_widens_the_spacing_range(
 
     card = json.loads((run.directory / "card.json").read_text())
     assert card["settings"]["augmentation"]["zoom_range"] == [1.0, 1.6]
+
+
+def test_synth_exports_with_data_bars_and_rims(tmp_path):
+    # Our own generator: the styling leaves the pattern images as they were without it.
+    import json
+
+    from topoclass.images import read_micrograph
+    from topoclass.synth import write_dataset
+
+    plain = write_dataset(tmp_path / "plain", per_class=2, size=96, seed=4)
+    styled = write_dataset(tmp_path / "styled", per_class=2, size=96, seed=4, data_bars=1.0,
+                           rims=True)
+    for truth_file in sorted((styled.parent / "truth").glob("*.json")):
+        truth = json.loads(truth_file.read_text())
+        image = read_micrograph(styled.parent / truth["image"]).image
+        bar = find_data_bar(image)
+        assert bar is not None and abs(bar.boundary - truth["data_bar_row"]) <= 2
+        assert truth["sample"]["rim"] > 0
+    again = write_dataset(tmp_path / "again", per_class=2, size=96, seed=4)
+    assert (plain.parent / "images" / "ordered_000.png").read_bytes() == (
+        again.parent / "images" / "ordered_000.png").read_bytes()

@@ -188,6 +188,31 @@ def test_rescore_is_a_new_run_and_resume_copies_stored_rows(small_model, batch, 
     store.close()
 
 
+def test_resume_at_another_review_alpha_scores_again(small_model, batch, feature_cache,
+                                                    tmp_path):
+    # Verdicts depend on the review band's error rate, so rows stored at one alpha are not
+    # reused by a resume at another (the settings key holds the alpha).
+    paths = collect_image_paths([batch])[:3]
+    trained = small_model.model
+    classes = [str(c) for c in trained.classes]
+    store = open_store(tmp_path / "results.db")
+
+    def run(out, alpha, resume=False):
+        rec = store.start_batch(model_sha256="d" * 64, model_path="m", classes=classes,
+                                settings=trained.settings, output_csv=str(out),
+                                n_images=len(paths), review_alpha=alpha)
+        return score_images(trained, paths, out, cache_dir=feature_cache, recorder=rec,
+                            resume=resume, alpha=alpha)
+
+    run(tmp_path / "a.csv", 0.1)
+    assert run(tmp_path / "b.csv", 0.1, resume=True).skipped == 3
+    again = run(tmp_path / "c.csv", 0.2, resume=True)
+    assert again.skipped == 0 and again.scored == 3
+    assert settings_key(trained.settings, 0.1) != settings_key(trained.settings, 0.2)
+    assert settings_key(trained.settings) == settings_key(trained.settings, None)
+    store.close()
+
+
 def test_a_failing_chunk_leaves_no_half_row(tmp_path, monkeypatch):
     store = open_store(tmp_path / "results.db")
     rec = _start(store)

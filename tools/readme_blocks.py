@@ -122,12 +122,20 @@ def loose_figures(document: str) -> list[str]:
     for para_start, para in _paragraphs(text):
         for sent_start, sentence in _sentences(para):
             for pattern in FIGURE_PATTERNS:
-                m = pattern.search(sentence)
+                m = next((m for m in pattern.finditer(sentence)
+                          if not _is_setting(sentence, m)), None)
                 if m and not CITES_BENCHMARK.search(sentence):
                     line = text.count("\n", 0, para_start + sent_start + m.start()) + 1
                     found.append(f"README line {line}: {' '.join(sentence.split())[:160]}")
                     break
     return found
+
+
+def _is_setting(sentence: str, match: re.Match) -> bool:
+    """A default value (``1500 MB by default``, ``default 3 s``) is a setting, not a figure."""
+    after = sentence[match.end():match.end() + 14]
+    before = sentence[max(0, match.start() - 12):match.start()]
+    return bool(re.match(r"\W{0,2}by default", after) or re.search(r"default\W{0,2}$", before))
 
 
 def _line_of(document: str, offset: int) -> str:

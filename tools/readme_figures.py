@@ -4,6 +4,9 @@ sentences that quote benchmark results.
     python tools/readme_figures.py            # about as long as `topoclass demo` plus scoring
     python tools/readme_figures.py --check    # run everything, change nothing, exit 1 if stale
 
+It also redraws the README's pictures from the same demo run (``docs/make_figures.py``;
+``--no-pictures`` leaves them alone).
+
 In a temporary folder it runs ``topoclass demo`` as a user would (timed: that is the README's
 demo time), then, in the folder the demo wrote, every command of the README's walk-through in
 README order: the command of an ``<!-- out:NAME:start -->`` block is the ``bash`` fence right
@@ -265,6 +268,9 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--check", action="store_true",
                         help="change nothing; exit 1 when a block would change (date aside)")
+    parser.add_argument("--no-pictures", action="store_true",
+                        help="leave docs/*.png alone (by default docs/make_figures.py redraws "
+                             "them from the same demo run)")
     parser.add_argument("--workdir", type=Path,
                         help="run in this (empty) folder and keep it, instead of a temporary one")
     args = parser.parse_args(argv)
@@ -277,11 +283,18 @@ def main(argv: list[str] | None = None) -> int:
         # The run is long: fill the README as it is now, not as it was when the run started.
         text = README.read_text(encoding="utf-8")
         new = replace_blocks(text, block_contents(text, run))
+        if not args.check:
+            README.write_text(new, encoding="utf-8")
+            if not args.no_pictures:
+                sys.path.insert(0, str(ROOT / "docs"))
+                from make_figures import make_figures
+
+                for name, size in make_figures(run.demo).items():
+                    print(f"docs/{name}: {size / 1000:.0f} kB")
     if args.check:
         stale = _without_stamps(new) != _without_stamps(text)
         print("README figures are " + ("stale" if stale else "up to date"))
         return 1 if stale else 0
-    README.write_text(new, encoding="utf-8")
     print(f"README.md: {len(find_blocks(new))} marked blocks; the demo took "
           f"{run.demo_seconds:.0f} s")
     return 0

@@ -120,11 +120,15 @@ def synth(
     per_class: int = typer.Option(8, "--per-class", min=1, help="Images per class."),
     size: int = typer.Option(384, "--size", min=64, help="Image side in pixels."),
     seed: int = typer.Option(0, "--seed", help="Random seed; same seed, same images."),
+    data_bars: float = typer.Option(0.0, "--data-bars", min=0.0, max=1.0,
+                                    help="Fraction of images exported with a data bar."),
+    rims: bool = typer.Option(False, "--rims", help="Draw pores with bright rims."),
 ) -> None:
     """Make synthetic anodic-alumina micrographs with ground truth (invented demo data)."""
     from topoclass.synth import write_dataset
 
-    labels = write_dataset(out_dir, per_class=per_class, size=size, seed=seed, progress=True)
+    labels = write_dataset(out_dir, per_class=per_class, size=size, seed=seed, progress=True,
+                           data_bars=data_bars, rims=rims)
     typer.echo(f"wrote {labels}")
 
 
@@ -152,7 +156,8 @@ def train(
         None, "--zoom-range", help="Also train on rescaled copies of every image at zoom "
         "factors lo,hi (e.g. 0.5,2), so the model covers those magnifications."),
     zoom_copies: int = typer.Option(3, "--zoom-copies", min=1,
-                                    help="Rescaled copies per image with --zoom-range."),
+                                    help="Zoom factors spread over --zoom-range (a factor "
+                                    "of 1 is the original and adds no copy)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace the model already in "
                                    "--model (all its files, the validation report too)."),
 ) -> None:
@@ -262,7 +267,7 @@ def score(
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
     recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
-                                              len(paths), note)
+                                              len(paths), note, alpha)
     summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
                            overwrite=overwrite, cache_dir=cache, progress=True,
                            recorder=recorder, alpha=alpha)
@@ -285,7 +290,7 @@ def score(
         raise typer.Exit(1)
 
 
-def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
+def _batch_recorder(store, model_dir, trained, settings, out, n_images, note, alpha):
     """Open the store and start the batch; a store that cannot be used does not stop scoring."""
     if store is None:
         return None, None
@@ -301,7 +306,10 @@ def _batch_recorder(store, model_dir, trained, settings, out, n_images, note):
         recorder = opened.start_batch(
             model_sha256=model_sha256(model_dir), model_path=str(Path(model_dir).absolute()),
             classes=[str(c) for c in trained.classes], settings=settings,
-            output_csv=str(Path(out).absolute()), n_images=n_images, note=note)
+            output_csv=str(Path(out).absolute()), n_images=n_images, note=note,
+            # The verdicts' error rate: the one asked for, else the model's own band's.
+            review_alpha=alpha if alpha is not None
+            else getattr(getattr(trained, "review_band", None), "alpha_", None))
     except StoreError as exc:
         opened.close()
         typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
@@ -431,7 +439,6 @@ def suggest(
     else:
         for path, _ in ranked:
             typer.echo(str(path))
-
 
 
 @app.command()
@@ -571,6 +578,43 @@ def _scores_from_store(store, page: Path, batch, since, model_hash) -> Path:
                              "lists what it holds")
     typer.echo(f"{n} rows from {opened.name} written to {target}")
     return target
+
+
+@app.command("map")
+def map_command(
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR",
+                            help="Model folder written by `topoclass train`."),
+    image: Path = typer.Argument(..., metavar="IMAGE",
+                            help="Large micrograph (TIFF read in pieces; PNG/JPEG whole)."),
+    out: Path = typer.Option(..., "--out", help="Folder for tiles.csv, totals.csv, map.png "
+                             "and map.html."),
+    tile: int | None = typer.Option(None, "--tile", min=32, help="Tile side in pixels "
+                                    "(default: as many sites as a training image)."),
+    overlap: float = typer.Option(3.0, "--overlap", min=0.0, help="Overlap of neighbouring "
+                                  "tiles, in lattice spacings."),
+    jobs: int = typer.Option(1, "--jobs", min=1, help="Parallel workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep finished tiles; map the rest."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing map."),
+    memory_limit: float = typer.Option(1500, "--memory-limit", min=1, help="MB a file that "
+                                       "cannot be read in pieces may take to read whole."),
+    alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
+                                       + " Default: the one the model was trained with."),
+) -> None:
+    """Map where each class sits on a large micrograph, tile by tile."""
+    from topoclass.mapping import map_image, map_summary_text
+    from topoclass.model import load_model
+    from topoclass.report.map_view import write_map_views
+
+    trained = load_model(model_dir)
+    summary = map_image(trained, image, out, tile=tile, overlap=overlap, jobs=jobs,
+                        resume=resume, overwrite=overwrite, memory_limit_mb=memory_limit,
+                        progress=True, alpha=alpha)
+    png, page = write_map_views(out, image, memory_limit_mb=memory_limit)
+    typer.echo(map_summary_text(summary))
+    typer.echo(f"map: {png}\npage: {page}")
+    if summary.scored == 0 and summary.skipped == 0:
+        raise TopoclassError(f"{out / 'tiles.csv'}: none of the {len(summary.plan)} tiles could "
+                             "be scored; see the message column")
 
 
 def _human_summary(summary: dict) -> str:

@@ -25,6 +25,7 @@ import numpy as np
 from topoclass import __version__
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.amounts import PatternAmounts, pattern_amounts
 from topoclass.augment import zoom_image
 from topoclass.errors import TopoclassError
@@ -146,11 +147,23 @@ def measure_image(
     """
     settings = settings or FeatureSettings()
     micrograph = read_micrograph(path, max_pixels=settings.max_pixels)
+    return measure_micrograph(micrograph, settings, zoom=zoom)
+
+
+def measure_micrograph(micrograph: Micrograph, settings: FeatureSettings | None = None, *,
+                       zoom: float = 1.0) -> ImageMeasurement:
+    """Sites, persistence, order measures and amounts of an image already read.
+
+    The part of :func:`measure_image` after reading, so that a piece of a large micrograph
+    (:mod:`topoclass.mapping`) is measured exactly as a whole file is.
+    """
+    settings = settings or FeatureSettings()
+    source = micrograph.source
     pixel_size = micrograph.pixel_size_nm
     if pixel_size is None:
         pixel_size = settings.pixel_size_nm
     region = analysed_region(micrograph.image, settings.region, auto=settings.auto_region,
-                             source=str(path))
+                             source=source)
     image, box = micrograph.image, region.box
     if zoom != 1.0:
         x0, y0, x1, y1 = box
@@ -159,14 +172,14 @@ def measure_image(
         pixel_size = None if pixel_size is None else pixel_size / zoom
         box = None
     pattern = find_sites(image, polarity=settings.polarity, pixel_size_nm=pixel_size,
-                         source=str(path), region=box)
+                         source=source, region=box)
     diagrams = pattern_persistence(pattern, max_scale=settings.max_scale)
     amounts = pattern_amounts(pattern, diagrams)
     remarks = [f"left out: {region.left_out()}"] if not region.whole else []
     if not pattern.preferred_spacing:
         remarks.append("no preferred spacing (no ring in the power spectrum): the scale comes "
                        "from the spots, the spacing is that of a lattice of equal density")
-    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=str(path),
+    record = PatternRecord(diagrams=diagrams, order=order_measures(pattern), source=source,
                            amounts=amounts.values, region=pattern.frame,
                            remarks=tuple(remarks))
     return ImageMeasurement(micrograph, pattern, record, amounts, region)
@@ -279,8 +292,10 @@ class _Worker:
     def __init__(self, settings: FeatureSettings, cache: _RecordCache | None):
         self.settings = settings
         self.cache = cache
+        self.owner = pool_owner()
 
     def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         try:
             sha = file_sha256(path)
         except OSError as exc:

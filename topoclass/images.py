@@ -229,8 +229,7 @@ def _check_header(path: Path, rows: int, cols: int, max_pixels: int) -> None:
     if n > max_pixels:
         raise ImageReadError(
             f"{path}: {cols}x{rows} = {n:,} pixels is more than the limit of {max_pixels:,}; "
-            "if the file is trusted, raise the limit with max_pixels= (command line: "
-            "--max-pixels) or crop the image"
+            "if the file is trusted, raise the limit with --max-pixels or crop the image"
         )
 
 

@@ -20,7 +20,7 @@ import io
 import os
 from collections import Counter
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import NoReturn
 
@@ -49,6 +49,9 @@ class LabelSet:
         The sheet (CSV file or class folder).
     sheet_hash : str
         SHA-256 of the CSV's bytes, or of the sorted listing of a class folder.
+    extra : dict of str to tuple of str
+        The sheet's other columns (operator, date, ...), by header name, one value per image;
+        carried into the outputs that list images one per row.
     """
 
     images: tuple[Path, ...]
@@ -56,6 +59,7 @@ class LabelSet:
     groups: tuple[str, ...] | None
     source: Path
     sheet_hash: str
+    extra: dict[str, tuple[str, ...]] = field(default_factory=dict)
 
     def __len__(self) -> int:
         return len(self.images)
@@ -105,10 +109,12 @@ def read_labels(
     if n_folds is not None and n_folds < 2:
         raise ValueError(f"n_folds must be at least 2, got {n_folds}")
     source = Path(os.path.expanduser(source))
+    extra: dict[str, tuple[str, ...]] = {}
     if source.is_dir():
         images, labels, groups, digest, problems = _read_folder(source)
     elif source.is_file():
-        images, labels, groups, digest, problems = _read_csv(source, check_files, partial)
+        images, labels, groups, digest, problems, extra = _read_csv(source, check_files,
+                                                                    partial)
     else:
         _fail(source, [f"not found, give a CSV file ({','.join(REQUIRED_COLUMNS)}[,group]) "
                        "or a folder with one sub-folder per class"])
@@ -122,6 +128,7 @@ def read_labels(
         groups=tuple(groups) if groups is not None else None,
         source=source,
         sheet_hash=digest,
+        extra=extra,
     )
 
 
@@ -197,6 +204,7 @@ def _read_csv(source: Path, check_files: bool, partial: bool = False):
     labels: list[str] = []
     groups: list[str] = []
     lines: list[int | None] = []
+    kept: list[list[str]] = []  # the cells of every accepted row, for the extra columns
     try:
         header = None
         for row in reader:
@@ -205,13 +213,16 @@ def _read_csv(source: Path, check_files: bool, partial: bool = False):
                 continue
             if header is None:
                 header = [cell.lower() for cell in cells]
-                problems += _check_header(header, partial)
+                problems += _check_header(header)
                 if problems:
                     break
                 columns = {name: header.index(name) for name in header}
                 continue
+            before = len(images)
             _parse_row(cells, reader.line_num, header, columns, source.parent, images, labels,
                        groups, lines, problems)
+            if len(images) > before:
+                kept.append(cells + [""] * (len(header) - len(cells)))
     except csv.Error as exc:
         problems.append(f"line {reader.line_num}: not valid CSV ({exc}), check the quotes")
     if header is None and not problems:
@@ -226,7 +237,10 @@ def _read_csv(source: Path, check_files: bool, partial: bool = False):
                 what = "is a folder, not an image file" if _is_dir(image) else "not found"
                 problems.append(f"line {line}: image {image} {what}")
     grouped = header is not None and "group" in header
-    return images, labels, groups if grouped else None, digest, problems
+    allowed = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
+    extra = {name: tuple(cells[k] for cells in kept) for k, name in enumerate(header or ())
+             if name not in allowed}
+    return images, labels, groups if grouped else None, digest, problems, extra
 
 
 def _delimiter(text: str) -> str:
@@ -239,19 +253,21 @@ def _delimiter(text: str) -> str:
     return ","
 
 
-def _check_header(header: list[str], partial: bool = False) -> list[str]:
+def _check_header(header: list[str]) -> list[str]:
     problems = []
     allowed = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
     for name in header:
-        if name not in allowed and not (partial and name):
-            shown = f"'{name}'" if name else "an unnamed column"
-            problems.append(f"line 1: unknown column {shown}, allowed columns are "
-                            f"{', '.join(allowed)}")
+        # Other named columns (operator, date, ...) are kept and carried into the outputs.
+        if not name:
+            problems.append("line 1: a column has no name, name it (columns other than "
+                            f"{', '.join(allowed)} are kept as notes) or delete it")
+    others = [f"'{name}'" for name in header if name and name not in allowed]
+    kept = f"; {', '.join(others)} would be kept as notes" if others else ""
     for name in REQUIRED_COLUMNS:
         if name not in header:
             problems.append(f"line 1: missing required column '{name}' (the header must "
-                            f"be {','.join(REQUIRED_COLUMNS)}[,group])")
-    repeated = sorted(name for name, n in Counter(header).items() if n > 1 and name in allowed)
+                            f"be {','.join(REQUIRED_COLUMNS)}[,group]{kept})")
+    repeated = sorted(name for name, n in Counter(header).items() if n > 1 and name)
     for name in repeated:
         problems.append(f"line 1: column '{name}' appears more than once, keep one")
     return problems
@@ -373,9 +389,24 @@ def _check_classes(labels, groups, n_folds, partial: bool = False) -> list[str]:
                 n, unit = counts[label], "image"
             if n < n_folds:
                 problems.append(f"class '{label}' has {n} {unit}{'s' if n != 1 else ''}, fewer "
-                                f"than the {n_folds} cross-validation folds, add {unit}s to "
-                                "it or use fewer folds")
+                                f"than the {n_folds} cross-validation folds; "
+                                + _more_folds_advice(label, n, n_folds, unit))
     return problems
+
+
+def _more_folds_advice(label: str, n: int, n_folds: int, unit: str) -> str:
+    """What to do when a class has fewer images (or groups) than folds."""
+    more = n_folds - n
+    if unit == "group":
+        # Every fold must hold out one whole sample of each class: more images of the same
+        # samples do not help, images of other samples do.
+        add = (f"label images of {more} more sample{'s' if more != 1 else ''} (groups) of "
+               f"'{label}'")
+    else:
+        add = f"label {more} more image{'s' if more != 1 else ''} of '{label}'"
+    if n >= 2:
+        return f"{add}, or use --cv {n}"
+    return add + " (cross-validation needs at least 2 per class, so fewer folds cannot help)"
 
 
 def _line_of(problem: str) -> int:

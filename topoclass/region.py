@@ -6,14 +6,18 @@ holding text (voltage, magnification, working distance) and a scale bar. Sites f
 glyphs would enter the persistence, the order measures and the overlay, so the band is found
 and left out:
 
-1. The band's level is the median of the two outermost rows.
+1. The band's level is the median of the two outermost rows; pixels within 0.05 grey levels of
+   it (compression rings around the glyphs) count as at that level.
 2. The band ends at a sharp horizontal edge: the first row from which on that level is rare
-   (under a quarter of the row) for three rows running.
-3. Every row before the edge (one transitional row aside) has at least 30 % of its pixels at the
+   (under 35 % of the row) for three rows running.
+3. Every row before the edge (one transitional row aside) has at least 40 % of its pixels at the
    band's level (text and the scale bar take the rest), and the level is rare in a block of
    the micrograph beyond it; a band deeper than 35 % of the frame, or thinner than 6 rows, is
    not a data bar.
 4. The marks inside the band (connected pixels off its level) are counted: text-like blobs.
+
+A white band against walls that are themselves saturated white is not told apart from them;
+give such images a ``--region``.
 
 A user can also give the region (``x0,y0,x1,y1`` in pixels, or fractions of the frame when all
 four are at most 1); the automatic search then runs inside it unless it is switched off.
@@ -30,9 +34,9 @@ from topoclass.errors import TopoclassError
 
 _LEVEL_TOLERANCE = 0.05  # grey levels (image in [0, 1]) counted as "at the band's level"
 _OUTER_ROW_FILL = 0.9  # the two outermost rows of a band are nearly all at its level
-_BAND_ROW_FILL = 0.3  # every band row has at least this fraction of its pixels at that level
-_IMAGE_ROW_FILL = 0.25  # rows of the micrograph have at most this fraction at that level ...
-_IMAGE_BLOCK_FILL = 0.15  # ... and a block of them at most this fraction
+_BAND_ROW_FILL = 0.4  # every band row has at least this fraction of its pixels at that level
+_IMAGE_ROW_FILL = 0.35  # rows of the micrograph have less than this fraction at that level ...
+_IMAGE_BLOCK_FILL = 0.3  # ... and a block of them at most this (saturated walls reach 0.2)
 _MIN_BAND_ROWS = 6
 _MAX_BAND_FRACTION = 0.35
 _EDGE_ROWS = 2  # the band must give way to the micrograph within this many rows
@@ -230,7 +234,8 @@ def _band_from_edge(img: np.ndarray) -> tuple[int, float, int] | None:
     rows = img.shape[0]
     depth_max = int(_MAX_BAND_FRACTION * rows)
     level = float(np.median(img[:2]))
-    near = np.abs(img[: depth_max + _EDGE_ROWS + 1] - level) <= _LEVEL_TOLERANCE
+    tolerance = _LEVEL_TOLERANCE
+    near = np.abs(img[: depth_max + _EDGE_ROWS + 1] - level) <= tolerance
     fill = near.mean(axis=1)
     if fill[:2].min() < _OUTER_ROW_FILL:
         return None  # the outermost rows of a data bar are plain
@@ -245,7 +250,7 @@ def _band_from_edge(img: np.ndarray) -> tuple[int, float, int] | None:
     if fill[: depth - 1].min() < _BAND_ROW_FILL:
         return None
     block = img[depth : depth + max(3 * _MIN_BAND_ROWS, depth)]
-    if np.mean(np.abs(block - level) <= _LEVEL_TOLERANCE) > _IMAGE_BLOCK_FILL:
+    if np.mean(np.abs(block - level) <= tolerance) > _IMAGE_BLOCK_FILL:
         return None  # the band's level is common in the micrograph: a row of walls or pores
     _, marks = ndimage.label(~near[:depth], structure=np.ones((3, 3)))
     return depth, level, int(marks)

@@ -161,10 +161,17 @@ def model_sha256(model_dir: str | os.PathLike) -> str:
     return str(card["sha256"])
 
 
-def settings_key(settings: Mapping | object) -> str:
-    """A stable hash of the feature settings that shape a result (``max_pixels`` aside)."""
+def settings_key(settings: Mapping | object, review_alpha: float | None = None) -> str:
+    """A stable hash of the settings that shape a result (``max_pixels`` aside).
+
+    ``review_alpha``, the error rate of the review band the verdicts were made with, is part
+    of it: the same image scored at another alpha can get another verdict, so a resume at
+    another alpha must not reuse stored rows.
+    """
     plain = _plain_settings(settings)
     plain.pop("max_pixels", None)  # decides whether an image is read, not what comes out
+    if review_alpha is not None:
+        plain["review_alpha"] = float(review_alpha)
     return hashlib.sha256(json.dumps(plain, sort_keys=True).encode()).hexdigest()
 
 
@@ -194,14 +201,18 @@ class ResultStore:
 
     def start_batch(self, *, model_sha256: str, model_path: str, classes: Sequence[str],
                     settings: object, output_csv: str, n_images: int,
-                    note: str = "") -> BatchRecorder:
+                    note: str = "", review_alpha: float | None = None) -> BatchRecorder:
         """Record the start of a scoring batch and return the recorder for its rows."""
         values = {
             "started_utc": _now(), "host": socket.gethostname(), "operator": _operator(),
             "note": note or "", "model_sha256": model_sha256, "model_path": str(model_path),
             "classes": json.dumps([str(c) for c in classes]),
-            "settings": json.dumps(_plain_settings(settings), sort_keys=True),
-            "settings_key": settings_key(settings), "topoclass_version": __version__,
+            "settings": json.dumps({**_plain_settings(settings),
+                                    **({} if review_alpha is None
+                                       else {"review_alpha": float(review_alpha)})},
+                                   sort_keys=True),
+            "settings_key": settings_key(settings, review_alpha),
+            "topoclass_version": __version__,
             "output_csv": str(output_csv), "n_images": int(n_images),
         }
         with self._write() as conn:

@@ -222,7 +222,12 @@ def add_data_bar(
     size = max(8, min(height // 3, cols // 40))
     font = ImageFont.load_default(size=size)
     kv, mag, wd = rng.choice([3, 5, 10, 15]), rng.choice([20, 50, 100]), rng.uniform(3, 9)
-    text = f"{kv} kV   x{mag},000   WD {wd:.1f} mm   line A   sample {rng.integers(1, 99):02d}"
+    fields = [f"{kv} kV", f"x{mag},000", f"WD {wd:.1f} mm", "line A",
+              f"sample {rng.integers(1, 99):02d}"]
+    text = "   ".join(fields)
+    while len(fields) > 1 and draw.textlength(text, font=font) > 0.6 * cols:
+        fields.pop()  # a narrow frame shows fewer fields, as instruments do
+        text = "   ".join(fields)
     draw.text((max(2, cols // 60), height // 2), text, fill=ink, font=font, anchor="lm")
     bar_len = int(cols * rng.uniform(0.1, 0.2))
     x1 = cols - max(4, cols // 30)
@@ -347,6 +352,7 @@ def make_micrograph(
         illumination=illumination,
         noise=noise,
         contrast=contrast,
+        rim=float(sample.get("rim", 0.0)),
         seed=int(rng.integers(2**63 - 1)),
     )
 
@@ -423,6 +429,8 @@ def write_dataset(
     seed: int = 0,
     groups_per_class: int | None = None,
     progress: bool = False,
+    data_bars: float = 0.0,
+    rims: bool = False,
 ) -> Path:
     """Write a labelled set of invented anodic-alumina micrographs with ground truth.
 
@@ -446,11 +454,21 @@ def write_dataset(
         images.
     progress : bool
         Show a progress bar on stderr.
+    data_bars : float
+        Fraction of the images exported with an instrument data bar (:func:`add_data_bar`,
+        dark or bright at random); the truth records its first row as ``data_bar_row``.
+    rims : bool
+        Draw the pores of each sample with bright rims of a brightness drawn per sample (the
+        edge effect of secondary-electron images).
 
     Returns
     -------
     Path of ``labels.csv``.
     """
+    if not 0.0 <= data_bars <= 1.0:
+        raise ValueError(f"data_bars must be a fraction in [0, 1], not {data_bars}")
+    # The export styling has a stream of its own, so the pattern images stay the same as without.
+    styling = np.random.default_rng(np.random.SeedSequence([int(seed), 0xBA2]))
     per_class = int(per_class)
     if per_class < 1:
         raise ValueError(f"per_class must be at least 1, not {per_class}")
@@ -487,8 +505,15 @@ def write_dataset(
     names, labels, groups = [], [], []
     bar = progress_bar(len(jobs), "invented micrographs") if progress else nullcontext(_no_op)
     with bar as advance:
+        rim_of: dict[str, float] = {}
         for kind, i, group, sample, as_tiff, image_seed in jobs:
+            if rims:
+                sample = {**sample, "rim": rim_of.setdefault(group, styling.uniform(0.2, 0.6))}
             image, truth = make_micrograph(kind, size=size, seed=image_seed, sample=sample)
+            if styling.uniform() < data_bars:
+                image, truth["data_bar_row"] = add_data_bar(
+                    image, polarity=("dark", "bright")[int(styling.integers(2))],
+                    seed=int(styling.integers(2**31)))
             stem = f"{kind}_{i:03d}"
             name = f"images/{stem}.tif" if as_tiff else f"images/{stem}.png"
             if as_tiff:

@@ -162,11 +162,12 @@ def train_from_labels(
     alpha : float
         Error rate of the review band (:class:`topoclass.model.ReviewBand`).
     zoom_range : (lo, hi), optional
-        Also train on ``zoom_copies`` rescaled copies of every image at zoom factors spread
-        over this range (:mod:`topoclass.augment`), so the model covers those spacings in
-        pixels; the card records the range and the spacings reached.
+        Also train on rescaled copies of every image at ``zoom_copies`` zoom factors spread
+        over this range (:func:`topoclass.augment.zoom_factors`; a factor of 1 is the original
+        and adds no copy), so the model covers those spacings in pixels; the card records the
+        range and the spacings reached.
     zoom_copies : int
-        Copies per image with ``zoom_range``.
+        Zoom factors with ``zoom_range``.
     overwrite : bool
         Replace a model already in ``model_dir``: once the new model is trained, every file
         of the old one (its validation report too) is removed. Without it an existing model
@@ -227,6 +228,7 @@ def train_from_labels(
             alpha=alpha,
         )
     model.settings["features"] = dataclasses.asdict(settings)
+    model.settings["training_images"] = training_image_sizes(records)
     model.settings["augmentation"] = augmentation
     if model.range_check is not None:
         names = list(model.range_check.names_)
@@ -252,6 +254,19 @@ def train_from_labels(
 
         write_training_figures(model, directory, records, y, groups=groups, seed=seed)
     return TrainingRun(model=model, directory=directory, failures=failures, comparison=comparison)
+
+
+def training_image_sizes(records) -> dict:
+    """Median site count and spacing of the training images, for the model card.
+
+    A map of a large micrograph cuts it into tiles holding as many sites as a training image
+    (:func:`topoclass.mapping.tile_side`), so that each tile is measured at the scale the
+    model learnt.
+    """
+    n_sites = [float(r.diagrams.n_sites or len(r.diagrams.h0) + 1) for r in records]
+    spacing = [float(r.diagrams.spacing) for r in records]
+    return {"median_n_sites": float(np.median(n_sites)) if n_sites else None,
+            "median_spacing_px": float(np.median(spacing)) if spacing else None}
 
 
 def validate_from_labels(
@@ -302,12 +317,38 @@ def validate_from_labels(
     from topoclass.report import write_metric_figures
 
     write_metric_figures(metrics, out, prefix="validation_", title="validation")
+    _write_validation_rows(out / "validation.csv", model, labels, records, failures)
     return ValidationRun(metrics=metrics, report=report, failures=failures)
 
 
 #: What :func:`validate_from_labels` writes (``write_metric_figures`` with its prefix).
-_VALIDATION_FILES = ("validation.md", *(f"validation_{name}.{ext}" for name in
+_VALIDATION_FILES = ("validation.md", "validation.csv", *(f"validation_{name}.{ext}" for name in
                      ("confusion", "reliability", "per_class") for ext in ("png", "svg")))
+
+
+def _write_validation_rows(path: Path, model, labels: LabelSet, records, failures) -> None:
+    """One row per held-out image: its label, the model's call, and the sheet's other columns."""
+    import csv
+
+    classes = [str(c) for c in model.classes]
+    proba, unfamiliarity, _ = model.assess(records)
+    failed = {str(r.path): r for r in failures}
+    columns = ["image", "label", "status", "predicted", "confidence",
+               *(f"p_{c}" for c in classes), "unfamiliar", *labels.extra, "message"]
+    measured = iter(zip(proba, unfamiliarity, strict=True))
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh, lineterminator="\n")
+        writer.writerow(columns)
+        for i, (image, label) in enumerate(zip(labels.images, labels.labels, strict=True)):
+            notes = [values[i] for values in labels.extra.values()]
+            if str(image) in failed:  # measured in sheet order, failures left out
+                writer.writerow([image, label, "error", "", "", *([""] * len(classes)), "",
+                                 *notes, failed[str(image)].error or ""])
+                continue
+            p, u = next(measured)
+            best = int(np.argmax(p))
+            writer.writerow([image, label, "ok", classes[best], f"{p[best]:.6g}",
+                             *(f"{v:.6g}" for v in p), "yes" if u > 1.0 else "no", *notes, ""])
 
 
 def _remove_validation_report(out: Path) -> None:

@@ -86,7 +86,8 @@ def fit_calibrated(pipeline, X, y, groups, method, cv, seed) -> CalibratedClassi
     if n_splits < 2:
         unit = "images" if groups is None else "sample groups"
         raise TopoclassError(f"a class has fewer than 2 {unit} in a training part, too few to "
-                             f"calibrate; label more {unit} per class or use fewer folds")
+                             f"calibrate; label more {unit} of every class (fewer folds "
+                             "cannot help: each class needs at least 2)")
     splits = fold_splits(y, groups, n_splits, seed)
     # ensemble=False: the calibrator learns from out-of-fold predictions on the grouped folds,
     # then one pipeline fitted on all images is shipped. An ensemble of one pipeline per fold

@@ -103,10 +103,14 @@ class RangeNovelty:
     def reasons(self, X) -> list[list[str]]:
         """Per image, the measures outside the training range, in words."""
         v = np.asarray(self.context_.transform(X), dtype=np.float64)
+        widen = 1.0 + self.tolerance
         out = []
         for row, ratio in zip(v, self.ratios(X), strict=True):
-            out.append([f"{name} {x:.3g} outside the training range {lo:.3g}-{hi:.3g}"
+            # Say the range actually applied: the training range widened by the tolerance.
+            out.append([f"{name} {x:.3g} outside the accepted range {lo / widen:.3g}-"
+                        f"{hi * widen:.3g} (training range {lo:.3g}-{hi:.3g} widened by "
+                        f"{self.tolerance:.0%})"
                         for name, x, r, lo, hi in zip(self.names_, row, ratio, self.low_,
                                                       self.high_, strict=True)
-                        if r > 1.0 + self.tolerance])
+                        if r > widen])
         return out

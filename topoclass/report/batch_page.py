@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings
 from topoclass.pages import html_page
@@ -256,9 +257,11 @@ class _ImageAssets:
         self.files, self.page_name, self.settings = files, page_name, settings
         self.cache_dir, self.classes, self.caution = cache_dir, classes, caution
         self.neighbours = neighbours  # the model's labelled training diagrams, if it keeps them
+        self.owner = pool_owner()
 
     def __call__(self, n: int, row: dict, path: Path, thumb: bool, detail: bool
                  ) -> tuple[int, str, str]:
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
         from topoclass.features import cached_measurement, measure_image
         from topoclass.images import read_micrograph
 

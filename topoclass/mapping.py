@@ -1,0 +1,491 @@
+"""Maps of large micrographs: which defect class sits where on a mosaic or large-area scan.
+
+A use case beside :mod:`topoclass.scoring`. The image is read piece by piece
+(:mod:`topoclass.bigimage`) and cut into overlapping tiles; each tile is measured exactly as a
+whole micrograph is (:func:`topoclass.features.measure_micrograph`) and scored with the same
+probabilities, novelty checks, review band and rows as ``score`` (the scoring module's own
+row builder). So that a tile is seen at the scale the model learnt, its side holds as many
+sites as the median training image (recorded in the model card) unless the user gives it.
+
+Geometry: the analysed region is cut into a grid of *cores* that cover it exactly once; each
+tile is its core widened by half the overlap on every side (shifted inwards at the frame, so
+that every tile has the same size), so no loop or neighbourhood is lost at a seam. Area totals
+count cores, never overlaps.
+
+``DIR/tiles.csv`` is written as in ``score``: rows appended and flushed as tiles finish, a lock
+beside it, ``resume=True`` keeps the finished tiles of a killed run.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import io
+import json
+import math
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from topoclass._files import file_sha256
+from topoclass._progress import progress_bar
+from topoclass.bigimage import DEFAULT_MEMORY_LIMIT_MB, LargeImage, open_large_image
+from topoclass.errors import PatternError, TopoclassError
+from topoclass.features import FeatureSettings, RecordResult, measure_micrograph
+from topoclass.scoring import (
+    AMOUNT_COLUMNS,
+    CAUTION,
+    MEASURE_COLUMNS,
+    _chunks,
+    _format_row,
+    _OutputLock,
+    _score_rows,
+)
+from topoclass.sites import estimate_spacing
+
+TILES_FILE = "tiles.csv"
+MAP_FILE = "map.json"
+TOTALS_FILE = "totals.csv"
+
+#: Overlap of neighbouring tiles, in lattice spacings: a vacancy's loop dies at sqrt(3)
+#: spacings and the persistence is radius-limited to 2.5, so 3 spacings keep both whole.
+DEFAULT_OVERLAP_SPACINGS = 3.0
+
+#: Sites per tile for a model whose card does not record its training images (older models).
+FALLBACK_TILE_SITES = 400
+
+#: Verdicts that are not a class, in the order the totals list them.
+OTHER_VERDICTS = ("review", "unfamiliar", "not measured")
+
+_HEX_AREA = math.sqrt(3.0) / 2.0  # area per site of a triangular lattice, in spacings squared
+_SPACING_PROBE_PX = 1024  # side of each crop the spacing of a large image is estimated on
+
+
+@dataclass(frozen=True)
+class TilePlan:
+    """Tiles over an image: rectangles measured and the cores they stand for.
+
+    Attributes
+    ----------
+    shape : (rows, cols)
+        Image size.
+    boxes : ndarray of int, shape (n, 4)
+        ``x0, y0, x1, y1`` (half-open pixels) of each tile, row by row.
+    cores : ndarray of int, shape (n, 4)
+        The part of the image each tile stands for; the cores cover the image exactly once.
+    tile, overlap : int
+        Tile side and overlap in pixels.
+    """
+
+    shape: tuple[int, int]
+    boxes: np.ndarray
+    cores: np.ndarray
+    tile: int
+    overlap: int
+
+    def __len__(self) -> int:
+        return int(self.boxes.shape[0])
+
+
+@dataclass
+class MapSummary:
+    """What a map run did."""
+
+    out_dir: Path
+    plan: TilePlan
+    spacing_px: float
+    pixel_size_nm: float | None
+    scored: int = 0
+    failed: int = 0
+    skipped: int = 0
+    totals: list[dict] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+def plan_tiles(shape: tuple[int, int], tile: int, overlap: int) -> TilePlan:
+    """Cut an image into tiles of side ``tile`` whose neighbours share ``overlap`` pixels.
+
+    Parameters
+    ----------
+    shape : (rows, cols)
+        Image size in pixels.
+    tile : int
+        Tile side in pixels (smaller where the image itself is smaller).
+    overlap : int
+        Pixels shared by neighbouring tiles, ``0 <= overlap < tile``.
+
+    Returns
+    -------
+    TilePlan
+    """
+    rows, cols = (int(v) for v in shape)
+    tile, overlap = int(tile), int(overlap)
+    if tile < 1 or not 0 <= overlap < tile:
+        raise ValueError(f"need tile >= 1 and 0 <= overlap < tile, not {tile}, {overlap}")
+    ys, ycore = _axis(rows, tile, overlap)
+    xs, xcore = _axis(cols, tile, overlap)
+    boxes, cores = [], []
+    for (b0, b1), (c0, c1) in zip(ys, ycore, strict=True):
+        for (a0, a1), (d0, d1) in zip(xs, xcore, strict=True):
+            boxes.append((a0, b0, a1, b1))
+            cores.append((d0, c0, d1, c1))
+    return TilePlan(shape=(rows, cols), boxes=np.array(boxes, dtype=np.int64).reshape(-1, 4),
+                    cores=np.array(cores, dtype=np.int64).reshape(-1, 4), tile=tile,
+                    overlap=overlap)
+
+
+def tile_side(model, spacing_px: float) -> tuple[int, str]:
+    """Tile side in pixels that holds as many sites as the model's median training image.
+
+    A square of side ``L`` on a triangular lattice of spacing ``a`` holds
+    ``L**2 / (sqrt(3)/2 a**2)`` sites (elementary geometry), so ``L = a sqrt(n sqrt(3)/2)``.
+
+    Returns
+    -------
+    (side, note)
+        The note says where the site count came from.
+    """
+    stored = dict(getattr(model, "settings", None) or {}).get("training_images") or {}
+    n = stored.get("median_n_sites")
+    if n:
+        note = f"tiles hold about {n:.0f} sites, the median of the training images"
+    else:
+        n = FALLBACK_TILE_SITES
+        note = (f"the model card records no training image size (an older model); tiles hold "
+                f"about {n} sites (give --tile to choose)")
+    return max(32, int(round(spacing_px * math.sqrt(float(n) * _HEX_AREA)))), note
+
+
+def map_spacing(image: LargeImage) -> float:
+    """Lattice spacing of a large image in pixels: the median over a few crops.
+
+    Crops of at most 1024 px at the centre and the centres of the four quarters, each
+    estimated with :func:`topoclass.sites.estimate_spacing`; crops without a lattice are left
+    out.
+
+    Raises
+    ------
+    PatternError
+        When no crop shows a lattice spacing.
+    """
+    rows, cols = image.shape
+    side = min(_SPACING_PROBE_PX, rows, cols)
+    centres = [(cols / 2, rows / 2)]
+    if min(rows, cols) >= 2 * side:
+        centres += [(cols * fx, rows * fy) for fx in (0.25, 0.75) for fy in (0.25, 0.75)]
+    found, why = [], ""
+    for cx, cy in centres:
+        x0 = int(min(max(cx - side / 2, 0), cols - side))
+        y0 = int(min(max(cy - side / 2, 0), rows - side))
+        try:
+            crop = image.read((x0, y0, x0 + side, y0 + side))
+            found.append(estimate_spacing(crop.image, source=crop.source))
+        except TopoclassError as exc:
+            why = str(exc)
+    if not found:
+        raise PatternError(f"{image.path}: no lattice spacing found in its central crops "
+                           f"({why}); give the tile size with --tile")
+    return float(np.median(found))
+
+
+def tile_columns(classes: Sequence[str]) -> list[str]:
+    """The header of ``tiles.csv`` for a model with these classes."""
+    return (["x0", "y0", "x1", "y1", "status", "predicted", "confidence", "verdict"]
+            + [f"p_{c}" for c in classes]
+            + ["unfamiliar", *MEASURE_COLUMNS, *AMOUNT_COLUMNS,
+               "core_x0", "core_y0", "core_x1", "core_y1", "message"])
+
+
+def map_image(
+    model,
+    image: str | Path,
+    out_dir: str | Path,
+    *,
+    tile: int | None = None,
+    overlap: float = DEFAULT_OVERLAP_SPACINGS,
+    settings: FeatureSettings | None = None,
+    jobs: int = 1,
+    resume: bool = False,
+    overwrite: bool = False,
+    memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB,
+    progress: bool = False,
+    alpha: float | None = None,
+) -> MapSummary:
+    """Score every tile of a large micrograph; write ``tiles.csv``, ``map.json``, ``totals.csv``.
+
+    Parameters
+    ----------
+    model : topoclass.model.TrainedModel
+        A trained model (:func:`topoclass.model.load_model`).
+    image : path-like
+        The micrograph (TIFF read in pieces; PNG/JPEG read whole within ``memory_limit_mb``).
+    out_dir : path-like
+        Folder for the outputs (made if missing).
+    tile : int, optional
+        Tile side in pixels; by default as many sites as the median training image
+        (:func:`tile_side`).
+    overlap : float
+        Overlap of neighbouring tiles in lattice spacings.
+    settings : FeatureSettings, optional
+        The model's own (:meth:`FeatureSettings.from_model`) when omitted.
+    jobs : int
+        Worker processes.
+    resume, overwrite : bool
+        Keep the finished tiles of an earlier run of the same image, model and tiles; or
+        replace earlier outputs. Without either, existing outputs are refused.
+    memory_limit_mb : float
+        See :func:`topoclass.bigimage.open_large_image`.
+    progress : bool
+        Progress bar on stderr.
+    alpha : float, optional
+        Error rate of the review band behind ``verdict`` (the model's own when omitted).
+
+    Returns
+    -------
+    MapSummary
+    """
+    out_dir = Path(out_dir)
+    classes = [str(c) for c in model.classes]
+    columns = tile_columns(classes)
+    settings = settings or FeatureSettings.from_model(model)
+    # A tile lies inside the analysed region already: no region of its own, no data-bar search
+    # (a tile edge is not an instrument's frame).
+    settings = dataclasses.replace(settings, region=None, auto_region=False)
+    if alpha is not None:
+        from topoclass.model.conformal import check_alpha
+
+        alpha = check_alpha(alpha)
+    if overlap < 0:
+        raise TopoclassError(f"overlap must be zero or more spacings, not {overlap}")
+    tiles_csv = out_dir / TILES_FILE
+    if tiles_csv.exists() and not (resume or overwrite):
+        raise TopoclassError(f"{tiles_csv}: a map exists in {out_dir}; pass --resume to continue "
+                             "it or --overwrite to replace it")
+    with open_large_image(image, memory_limit_mb=memory_limit_mb) as big:
+        notes = list(big.notes)
+        spacing = map_spacing(big)
+        if tile is None:
+            tile, why = tile_side(model, spacing)
+            notes.append(why)
+        tile = int(min(tile, max(big.shape)))
+        if tile < 32:
+            raise TopoclassError(f"tile side {tile} px is too small; give at least 32 pixels")
+        overlap_px = min(int(round(overlap * spacing)), tile // 2)
+        plan = plan_tiles(big.shape, tile, overlap_px)
+        pixel_size = big.pixel_size_nm if big.pixel_size_nm is not None \
+            else settings.pixel_size_nm
+        header = {
+            "image": str(image), "image_sha256": file_sha256(image),
+            "shape": list(big.shape), "tile_px": plan.tile, "overlap_px": plan.overlap,
+            "overlap_spacings": float(overlap), "spacing_px": spacing,
+            "pixel_size_nm": pixel_size, "classes": classes, "n_tiles": len(plan),
+            "caution": CAUTION,
+        }
+        summary = MapSummary(out_dir=out_dir, plan=plan, spacing_px=spacing,
+                             pixel_size_nm=pixel_size, notes=notes)
+        out_dir.mkdir(parents=True, exist_ok=True)
+        with _OutputLock(tiles_csv):
+            done = _prepare(out_dir, columns, header, resume=resume)
+            todo = [i for i in range(len(plan)) if tuple(plan.boxes[i]) not in done]
+            summary.skipped = len(plan) - len(todo)
+            with open(tiles_csv, "a", newline="", encoding="utf-8") as fh:
+                for chunk in _chunks(_tile_results(big, plan, todo, settings, jobs, progress),
+                                     16, 5.0):
+                    idx = [i for i, _ in chunk]
+                    rows = _score_rows(model, classes, [r for _, r in chunk], alpha)
+                    for i, row in zip(idx, rows, strict=True):
+                        _place(row, plan, i)
+                        if row["status"] == "ok":
+                            summary.scored += 1
+                        else:
+                            summary.failed += 1
+                    fh.write("".join(_format_row(row, columns) for row in rows))
+                    fh.flush()
+                    os.fsync(fh.fileno())
+    summary.totals = map_totals(read_tiles(tiles_csv), classes, pixel_size)
+    _write_totals(out_dir / TOTALS_FILE, summary.totals)
+    return summary
+
+
+def read_tiles(path: str | Path) -> list[dict[str, str]]:
+    """Rows of a ``tiles.csv`` (an incomplete last line, from a crash, is ignored)."""
+    text = Path(path).read_text(encoding="utf-8")
+    if text and not text.endswith("\n"):
+        text = text[: text.rfind("\n") + 1]
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+def read_map_header(out_dir: str | Path) -> dict:
+    """The ``map.json`` of a map folder (image, grid, spacing, pixel size, classes)."""
+    path = Path(out_dir) / MAP_FILE
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise TopoclassError(f"{path}: not found; run `topoclass map` first") from None
+    except (OSError, ValueError) as exc:
+        raise TopoclassError(f"{path}: cannot be read ({exc}); run the map again with "
+                             "--overwrite") from None
+
+
+def map_totals(rows: Sequence[dict], classes: Sequence[str],
+               pixel_size_nm: float | None = None) -> list[dict]:
+    """Share of the image each verdict covers, from the tile cores (which cover it once).
+
+    Returns
+    -------
+    list of dict
+        One per class, then ``review``, ``unfamiliar`` and ``not measured`` (failed tiles and
+        tiles not yet done): ``verdict, tiles, area_px, fraction`` and ``area_um2`` (None when
+        the pixel size is unknown).
+    """
+    area: dict[str, float] = {c: 0.0 for c in [*classes, *OTHER_VERDICTS]}
+    count: dict[str, int] = dict.fromkeys(area, 0)
+    total = 0.0
+    for r in rows:
+        a = (int(r["core_x1"]) - int(r["core_x0"])) * (int(r["core_y1"]) - int(r["core_y0"]))
+        total += a
+        verdict = (r.get("verdict") or "") if r.get("status") == "ok" else "not measured"
+        verdict = verdict if verdict in area else "not measured"
+        area[verdict] += a
+        count[verdict] += 1
+    um2 = None if pixel_size_nm is None else (pixel_size_nm / 1000.0) ** 2
+    return [{"verdict": v, "tiles": count[v], "area_px": area[v],
+             "fraction": area[v] / total if total else 0.0,
+             "area_um2": None if um2 is None else area[v] * um2} for v in area]
+
+
+def map_summary_text(summary: MapSummary) -> str:
+    """A short human summary of a map run, ending with the caution about probabilities."""
+    p = summary.plan
+    lines = [f"tiles {len(p)} ({p.tile} px, overlap {p.overlap} px, spacing "
+             f"{summary.spacing_px:.1f} px): scored {summary.scored}, failed {summary.failed}, "
+             f"already done {summary.skipped}"]
+    lines += [f"  note: {n}" for n in summary.notes]
+    for t in summary.totals:
+        if t["tiles"]:
+            size = "" if t["area_um2"] is None else f", {t['area_um2']:,.1f} µm²"
+            lines.append(f"  {t['verdict']:<16} {t['fraction']:6.1%} of the image "
+                         f"({t['tiles']} tiles{size})")
+    lines += [f"results: {summary.out_dir / TILES_FILE}", "", "Caution: " + CAUTION]
+    return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------------------------
+# private helpers
+
+
+def _axis(length: int, tile: int, overlap: int) -> tuple[list, list]:
+    """Tile and core intervals along one axis: cores split it evenly and exactly.
+
+    With ``n = ceil((length - overlap) / (tile - overlap))`` cores, a core is at most a pixel or
+    so wider than the step ``tile - overlap``; the tiles of this axis grow by that much, so that
+    neighbours always share at least ``overlap`` pixels.
+    """
+    if length <= tile:
+        return [(0, length)], [(0, length)]
+    n = math.ceil((length - overlap) / (tile - overlap))
+    edges = np.linspace(0, length, n + 1).round().astype(int)
+    side = min(length, max(tile, int(np.diff(edges).max()) + overlap))
+    spans, cores = [], []
+    for c0, c1 in zip(edges[:-1].tolist(), edges[1:].tolist(), strict=True):
+        t0 = int(math.floor((c0 + c1 - side) / 2))
+        t0 = min(max(t0, 0), length - side)  # shifted inwards at the frame
+        spans.append((t0, t0 + side))
+        cores.append((c0, c1))
+    return spans, cores
+
+
+def _tile_results(big: LargeImage, plan: TilePlan, todo: list[int], settings: FeatureSettings,
+                  jobs: int, progress: bool):
+    work = _TileWorker(big, settings)
+    boxes = [tuple(int(v) for v in plan.boxes[i]) for i in todo]
+    if jobs == 1 or len(boxes) <= 1:
+        results = (work(b) for b in boxes)
+    else:
+        from joblib import Parallel, delayed
+
+        parallel = Parallel(n_jobs=jobs, return_as="generator", batch_size="auto")
+        results = parallel(delayed(_limited)(work, b) for b in boxes)
+    if not progress:
+        yield from zip(todo, results, strict=True)
+        return
+    with progress_bar(len(boxes), "mapping tiles") as advance:
+        for item in zip(todo, results, strict=True):
+            advance()
+            yield item
+
+
+class _TileWorker:
+    """Measure one tile; picklable, so joblib can ship it (the image reopens in the worker)."""
+
+    def __init__(self, big: LargeImage, settings: FeatureSettings):
+        self.big = big
+        self.settings = settings
+
+    def __call__(self, box: tuple[int, int, int, int]) -> RecordResult:
+        name = Path(f"{self.big.path} [tile {','.join(map(str, box))}]")
+        try:
+            measured = measure_micrograph(self.big.read(box), self.settings)
+        except TopoclassError as exc:
+            # Input errors (a blank or damaged piece, no lattice) become an error row; anything
+            # else is a bug and stops the run.
+            return RecordResult(name, "", None, " ".join(str(exc).split()))
+        return RecordResult(name, "", measured.record, notes=measured.micrograph.notes)
+
+
+def _limited(work, box):
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):
+        return work(box)
+
+
+def _place(row: dict, plan: TilePlan, i: int) -> None:
+    row.pop("image", None)
+    row.pop("sha256", None)
+    for key, v in zip(("x0", "y0", "x1", "y1"), plan.boxes[i], strict=True):
+        row[key] = int(v)
+    for key, v in zip(("core_x0", "core_y0", "core_x1", "core_y1"), plan.cores[i], strict=True):
+        row[key] = int(v)
+
+
+def _prepare(out_dir: Path, columns: list[str], header: dict, *, resume: bool) -> set:
+    """Start fresh files, or check an earlier run and return its finished tile boxes."""
+    tiles_csv = out_dir / TILES_FILE
+    if not (resume and tiles_csv.exists()):
+        _write_json(out_dir / MAP_FILE, header)
+        tiles_csv.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
+                             encoding="utf-8")
+        return set()
+    earlier = read_map_header(out_dir)
+    same = ("image_sha256", "shape", "tile_px", "overlap_px", "classes")
+    if any(earlier.get(k) != header[k] for k in same):
+        raise TopoclassError(
+            f"{tiles_csv}: was made from another image, model or tile size; resume only with "
+            "the same ones, or pass --overwrite"
+        )
+    text = tiles_csv.read_text(encoding="utf-8")
+    first = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
+    if first != columns:
+        raise TopoclassError(f"{tiles_csv}: its columns do not match this model or version; "
+                             "pass --overwrite to map again")
+    if not text.endswith("\n"):  # a crash mid-write left half a row: that tile runs again
+        tiles_csv.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
+    return {tuple(int(r[k]) for k in ("x0", "y0", "x1", "y1")) for r in read_tiles(tiles_csv)}
+
+
+def _write_totals(path: Path, totals: list[dict]) -> None:
+    keys = ["verdict", "tiles", "area_px", "fraction", "area_um2"]
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        fh.write(_format_row(dict(zip(keys, keys, strict=True)), keys))
+        for t in totals:
+            fh.write(_format_row({k: ("" if t[k] is None else t[k]) for k in keys}, keys))
+
+
+def _write_json(path: Path, data: dict) -> None:
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(data, indent=1) + "\n", encoding="utf-8")
+    os.replace(tmp, path)
