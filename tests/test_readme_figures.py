@@ -21,7 +21,6 @@ for _p in (ROOT / "tools", ROOT / "benchmarks"):
 import readme_blocks as blocks  # noqa: E402
 import readme_figures as figures  # noqa: E402
 
-
 SCRIPTS = sorted(p for folder in ("tools", "docs", "benchmarks")
                  for p in (ROOT / folder).glob("*.py"))
 
