@@ -73,3 +73,17 @@ def test_help_shows_no_value_placeholder_for_flags(monkeypatch, capsys, command)
         # a flag's help line goes straight from the flag to its description
         assert not heads[flag].startswith("<"), out
     assert heads[valued].startswith("<")  # an option that takes a value still says so
+
+
+def test_readme_lists_the_columns_of_scores_csv_in_order():
+    # The README's column list is documentation a script reads; it must match the code.
+    import re
+
+    from topoclass.scoring import score_columns
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text(encoding="utf-8")
+    block = readme.split("<!-- columns:start -->")[1].split("<!-- columns:end -->")[0]
+    listed = [c.strip() for c in re.sub(r"[`\n]", " ", block).split(",")]
+    expected = [c for c in score_columns(["A"]) if c != "p_A"]
+    expected.insert(score_columns(["A"]).index("p_A"), "p_<class>…")
+    assert listed == expected

@@ -71,6 +71,30 @@ def test_reopening_continues_and_keeps_other_columns(tmp_path):
                             ["y.png", "grains", ""]]
 
 
+def test_a_page_sheet_with_extra_columns_trains_unchanged(small_dataset, feature_cache,
+                                                          tmp_path):
+    # A lab's sheet often carries its own columns (operator, date); the page keeps them and
+    # `topoclass train` reads the sheet exactly as the page left it.
+    labelled = read_labels(small_dataset)
+    rows = list(zip(labelled.images, labelled.labels, labelled.groups, strict=True))
+    sheet = small_dataset.parent / "page_labels.csv"
+    head = "".join(f"{os.path.relpath(i, sheet.parent)},{lab},{g},A. Operator,2026-11-30\n"
+                   for i, lab, g in rows[:4])
+    sheet.write_text("image,label,group,operator,date\n" + head, encoding="utf-8")
+    with LabelBook(sheet) as book:
+        for image, label, group in rows[4:]:
+            book.set_label(image, label, group)
+    written = sheet.read_bytes()
+    assert _rows(sheet)[0] == ["image", "label", "group", "operator", "date"]
+    assert _rows(sheet)[1][3:] == ["A. Operator", "2026-11-30"] and _rows(sheet)[5][3:] == ["", ""]
+    result = CliRunner().invoke(app, ["train", str(sheet), "--model", str(tmp_path / "model"),
+                                      "--cv", "3", "--cache", str(feature_cache)])
+    assert result.exit_code == 0, result.output
+    assert sheet.read_bytes() == written
+    card = json.loads((tmp_path / "model" / "card.json").read_text())
+    assert sorted(card["classes"]) == sorted(set(labelled.labels))
+
+
 def test_a_second_book_on_one_sheet_is_refused_until_the_first_closes(tmp_path):
     sheet = tmp_path / "labels.csv"
     first = LabelBook(sheet)

@@ -140,3 +140,21 @@ def _lattice_records() -> tuple[list[PatternRecord], list[str]]:
         records.append(_lattice_record(0, 20 + seed, jitter=0.2))
         labels.append("disordered")
     return records, labels
+
+
+def test_inspect_command_lists_the_nearest_labelled_images(small_model, tmp_path):
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    repo = Path(__file__).resolve().parents[1]
+    store = load_model(small_model.directory).neighbours
+    env = {**os.environ, "PYTHONPATH": str(repo) + os.pathsep + os.environ.get("PYTHONPATH", ""),
+           "TOPOCLASS_CACHE": str(tmp_path / "cache")}
+    done = subprocess.run([sys.executable, "-m", "topoclass", "inspect", store.images[1],
+                           "--model", str(small_model.directory)],
+                          env=env, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    lines = [ln for ln in done.stdout.splitlines() if "nearest labelled" in ln]
+    assert len(lines) == 3 and store.labels[1] in lines[0] and store.images[1] in lines[0]

@@ -132,10 +132,12 @@ def loose_figures(document: str) -> list[str]:
 
 
 def _is_setting(sentence: str, match: re.Match) -> bool:
-    """A default value (``1500 MB by default``, ``default 3 s``) is a setting, not a figure."""
+    """A default value (``1500 MB by default``, ``default 3 s``) or a time-out (``fails within
+    10 s``) is a setting, not a figure."""
     after = sentence[match.end():match.end() + 14]
     before = sentence[max(0, match.start() - 12):match.start()]
-    return bool(re.match(r"\W{0,2}by default", after) or re.search(r"default\W{0,2}$", before))
+    return bool(re.match(r"[\s;,)]*by default", after)
+                or re.search(r"(default|within)[\s(:]*$", before))
 
 
 def _line_of(document: str, offset: int) -> str:
@@ -155,7 +157,7 @@ def _paragraphs(text: str):
 def _sentences(paragraph: str):
     # A sentence ends at ". " / ".\n" after a word (not inside 0.28 or e.g. a file name).
     at = 0
-    for m in re.finditer(r"(?<=[a-z\)\]`*])[.;:!?](?=\s)", paragraph):
+    for m in re.finditer(r"(?<=[a-z0-9\)\]`*])[.;:!?](?=\s)", paragraph):
         yield at, paragraph[at:m.end()]
         at = m.end()
     if paragraph[at:].strip():

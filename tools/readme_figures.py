@@ -134,8 +134,8 @@ def block_contents(readme_text: str, run: WalkThrough) -> dict[str, str]:
 
 
 def _demo_time(run: WalkThrough) -> str:
-    return (f"{run.demo_seconds:.0f} s in the last run of `{SCRIPT}` ({run.date}; "
-            f"{run.machine})")
+    return (f"`topoclass demo` took {run.demo_seconds:.0f} s in the last run of `{SCRIPT}` "
+            f"({run.date}; {run.machine}).")
 
 
 def _score_rows(run: WalkThrough) -> str:
@@ -302,7 +302,7 @@ def main(argv: list[str] | None = None) -> int:
 
 def _without_stamps(text: str) -> str:
     text = re.sub(r"_[^_\n]*[Ww]ritten by `[^`]+` on [^_\n]*_", "", text)
-    return re.sub(r"\d+ s in the last run of `[^`]+` \([^)]*\)", "", text)
+    return re.sub(r"took \d+ s in the last run of `[^`]+` \([^)]*\)", "", text)
 
 
 if __name__ == "__main__":

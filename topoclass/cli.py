@@ -6,6 +6,7 @@ file that a notebook could not compute the same way.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import sys
 from pathlib import Path
@@ -19,6 +20,10 @@ _REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of t
                 "e.g. 0,0,1,0.9); a data bar inside it is still found and left out.")
 _NO_AUTO_REGION_HELP = "Do not look for an instrument data bar to leave out."
 
+
+_CLUSTER_HELP = ("Measure the images on a Dask cluster, whose workers take the place of "
+                 "parallel jobs: tcp://HOST:PORT of a running scheduler, or local:N to start "
+                 "N worker processes on this machine.")
 
 _FEATURE_HELP = "two-bar, order, topology or all"
 _ALPHA_HELP = ("Error rate of the review band: an image's set of plausible classes misses the "
@@ -160,6 +165,7 @@ def train(
                                     "of 1 is the original and adds no copy)."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace the model already in "
                                    "--model (all its files, the validation report too)."),
+    cluster: str | None = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
 ) -> None:
     """Train, cross-validate and calibrate a model from labelled micrographs."""
     from topoclass.augment import parse_zoom_range
@@ -167,13 +173,14 @@ def train(
     from topoclass.workflow import train_from_labels
 
     settings = FeatureSettings(polarity=polarity, **_region_options(region, no_auto_region))
-    run = train_from_labels(
-        labels, model, feature_set=features, classifier=classifier, cv=cv,
-        calibration=calibration, seed=seed, select=select,
-        settings=settings, jobs=jobs, cache_dir=cache, progress=True,
-        alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
-        overwrite=overwrite,
-    )
+    with _cluster_engine(cluster, jobs) as engine:
+        run = train_from_labels(
+            labels, model, feature_set=features, classifier=classifier, cv=cv,
+            calibration=calibration, seed=seed, select=select,
+            settings=settings, jobs=jobs, cache_dir=cache, progress=True,
+            alpha=alpha, zoom_range=parse_zoom_range(zoom_range), zoom_copies=zoom_copies,
+            overwrite=overwrite, engine=engine,
+        )
     _echo_failures(run.failures)
     if run.comparison:
         typer.echo(_comparison_table(run.comparison))
@@ -194,13 +201,15 @@ def validate(
     region: str | None = typer.Option(None, "--region", help=_REGION_HELP
                                       + " Default: the model's."),
     no_auto_region: bool = typer.Option(False, "--no-auto-region", help=_NO_AUTO_REGION_HELP),
+    cluster: str | None = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
 ) -> None:
     """Measure a trained model on a held-out labelled set."""
     from topoclass.workflow import validate_from_labels
 
-    run = validate_from_labels(model_dir, labels, out=out, jobs=jobs, cache_dir=cache,
-                               progress=True,
-                               overrides=_region_options(region, no_auto_region))
+    with _cluster_engine(cluster, jobs) as engine:
+        run = validate_from_labels(model_dir, labels, out=out, jobs=jobs, cache_dir=cache,
+                                   progress=True, engine=engine,
+                                   overrides=_region_options(region, no_auto_region))
     _echo_failures(run.failures)
     m = run.metrics
     typer.echo(f"held-out images {m['n_samples']}: accuracy {m['accuracy']:.3f}, "
@@ -239,6 +248,7 @@ def score(
                                 "at most this many images, the most doubtful first."),
     no_report: bool = typer.Option(False, "--no-report", help="Write the CSV only (`topoclass "
                                    "report` makes the page later)."),
+    cluster: str | None = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
 ) -> None:
     """Score micrographs in batch with a probability for each class.
 
@@ -268,15 +278,18 @@ def score(
     settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
     recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
                                               len(paths), note, alpha)
-    summary = score_images(trained, paths, out, settings=settings, jobs=jobs, resume=resume,
-                           overwrite=overwrite, cache_dir=cache, progress=True,
-                           recorder=recorder, alpha=alpha)
+    with _cluster_engine(cluster, jobs) as engine:
+        summary = score_images(trained, paths, out, settings=settings, jobs=jobs,
+                               resume=resume, overwrite=overwrite, cache_dir=cache,
+                               progress=True, recorder=recorder, alpha=alpha,
+                               engine=engine)
     if recorder is not None:
         recorder.store.close()
     typer.echo(summary_text(summary))
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
-                                  cache_dir=cache, overwrite=True, progress=True)
+                                  cache_dir=cache, overwrite=True, progress=True,
+                                  settings=settings)
         typer.echo(f"report: {page}")
     typer.echo(f"failed: {summary.total_failed} of {summary.given}")
     if summary.total_failed == summary.given:
@@ -388,7 +401,8 @@ def demo(
 
 @app.command()
 def label(
-    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    images: list[Path] = typer.Argument(..., metavar="IMAGES",
+                                        help="Images, folders or text files of paths."),
     sheet: Path = typer.Option(..., "--sheet", help="Label sheet (CSV) to fill in; made when "
                                "missing, continued when it exists."),
     classes: str | None = typer.Option(None, "--classes", help="Classes to offer, comma "
@@ -414,7 +428,8 @@ def label(
 
 @app.command()
 def suggest(
-    images: list[Path] = typer.Argument(..., help="Images, folders or text files of paths."),
+    images: list[Path] = typer.Argument(..., metavar="IMAGES",
+                                        help="Images, folders or text files of paths."),
     sheet: Path = typer.Option(..., "--sheet", help="Label sheet in progress (CSV)."),
     count: int = typer.Option(10, "--count", min=1, help="How many images to suggest."),
     as_json: bool = typer.Option(False, "--json", help="Print a JSON list with the predicted "
@@ -507,7 +522,8 @@ app.add_typer(store_app, name="store")
 
 @store_app.command("export")
 def store_export(
-    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    store: str = typer.Argument(..., metavar="STORE",
+                                help="A SQLite store file or a postgresql:// URL."),
     out: Path = typer.Option(..., "--out", help="File to write: .csv or .parquet."),
     since: str | None = typer.Option(None, "--since", help="Rows scored since this date "
                                      "(YYYY-MM-DD, UTC)."),
@@ -526,7 +542,8 @@ def store_export(
 
 @store_app.command("batches")
 def store_batches(
-    store: str = typer.Argument(..., help="A SQLite store file or a postgresql:// URL."),
+    store: str = typer.Argument(..., metavar="STORE",
+                                help="A SQLite store file or a postgresql:// URL."),
     last: int = typer.Option(20, "--last", min=1, help="Show this many newest batches."),
 ) -> None:
     """List the batches in a store, newest first."""
@@ -643,6 +660,23 @@ def _human_summary(summary: dict) -> str:
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+@contextlib.contextmanager
+def _cluster_engine(cluster: str | None, jobs: int):
+    """The ``with`` block of --cluster (None without it); says where the work goes, on stderr."""
+    if cluster is None:
+        yield None
+        return
+    from topoclass.cluster import open_engine, parse_cluster
+
+    spec = parse_cluster(cluster)  # a malformed address is refused before anything starts
+    if jobs != 1:
+        raise TopoclassError(f"give --jobs {jobs} or --cluster {cluster}, not both: the "
+                             "cluster's workers are the parallel workers")
+    with open_engine(spec) as engine:
+        typer.echo(engine.describe(), err=True)
+        yield engine
 
 
 def _model_settings(model_dir: Path, max_pixels: int):

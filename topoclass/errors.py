@@ -27,5 +27,9 @@ class ModelFileError(TopoclassError):
     """A model folder is missing, altered, untrusted or written by an incompatible version."""
 
 
+class ClusterError(TopoclassError):
+    """A Dask scheduler cannot be reached or was lost mid-run; the message says what to do."""
+
+
 class StoreError(TopoclassError):
     """A results store cannot be reached, opened or written; the message names it (and host)."""

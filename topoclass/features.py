@@ -37,7 +37,7 @@ from topoclass.region import AnalysedRegion, analysed_region
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 6
+_CACHE_LAYOUT = 7
 
 
 @dataclass(frozen=True)
@@ -201,12 +201,13 @@ def measure_patterns(
     progress: bool = False,
     description: str = "features",
     zooms: Sequence[float] | None = None,
+    engine=None,
 ) -> list[RecordResult]:
     """Pattern records of many images, in input order; see :func:`iter_records`."""
     return list(
         iter_records(
             paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-            description=description, zooms=zooms,
+            description=description, zooms=zooms, engine=engine,
         )
     )
 
@@ -237,6 +238,7 @@ def iter_records(
     progress: bool = False,
     description: str = "features",
     zooms: Sequence[float] | None = None,
+    engine=None,
 ) -> Iterator[RecordResult]:
     """Yield a :class:`RecordResult` per path, in input order, as images finish.
 
@@ -257,6 +259,11 @@ def iter_records(
     zooms : sequence of float, optional
         One zoom factor per path: measure a rescaled copy of the image instead
         (:func:`measure_image`); cached apart from the original.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Run each image as a task on a Dask cluster instead (``jobs`` is then ignored); results
+        still come back in input order, to this process. The cache folder is used by the
+        workers that can write it and skipped by those that cannot; a failed image's message
+        names the worker.
     """
     settings = settings or FeatureSettings()
     paths = [Path(p) for p in paths]
@@ -265,8 +272,11 @@ def iter_records(
         raise ValueError(f"{len(zooms)} zoom factors for {len(paths)} paths")
     cache = _cache_for(cache_dir, settings)
     work = _Worker(settings, cache)
-    if jobs == 1 or len(paths) <= 1:
-        results: Iterator[RecordResult] = (work(p, z) for p, z in zip(paths, zooms, strict=True))
+    if engine is not None:
+        results: Iterator[RecordResult] = engine.imap(
+            _OnWorker(work), zip(paths, zooms, strict=True), lost=_given_up)
+    elif jobs == 1 or len(paths) <= 1:
+        results = (work(p, z) for p, z in zip(paths, zooms, strict=True))
     else:
         from joblib import Parallel, delayed
 
@@ -330,6 +340,36 @@ def _limited(work: Callable, path: Path, zoom: float = 1.0) -> RecordResult:
 
     with threadpool_limits(limits=1):
         return work(path, zoom)
+
+
+class _OnWorker:
+    """One image as a cluster task: one BLAS thread, and a failure that names the worker."""
+
+    def __init__(self, work: _Worker):
+        # A worker's working folder is not the client's: relative paths (images, cache) are
+        # taken as the client meant them; results carry the path as given, as with --jobs.
+        self.cwd = Path.cwd()
+        if work.cache is not None:
+            work.cache.folder = work.cache.folder.absolute()
+        self.work = work
+
+    def __call__(self, path: Path, zoom: float = 1.0) -> RecordResult:
+        from topoclass.cluster import worker_name
+
+        result = _limited(self.work, self.cwd / path, zoom)
+        if result.ok:
+            return dataclasses.replace(result, path=path,
+                                       record=dataclasses.replace(result.record,
+                                                                  source=str(path)))
+        # A worker sees its own file system: where it failed matters to the operator.
+        where = worker_name()
+        error = f"{result.error} (on cluster worker {where})" if where else result.error
+        return dataclasses.replace(result, path=path, error=error)
+
+
+def _given_up(path: Path, zoom: float, reason: str) -> RecordResult:
+    return RecordResult(path, None, None, f"{path}: {reason}; score it alone, or on a worker "
+                        "with more memory (--resume retries it)")
 
 
 def _cache_for(cache_dir, settings: FeatureSettings) -> _RecordCache | None:

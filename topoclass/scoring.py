@@ -141,6 +141,7 @@ def score_images(
     progress: bool = False,
     recorder=None,
     alpha: float | None = None,
+    engine=None,
 ) -> ScoreSummary:
     """Score images with a trained model and append one row per image to ``out``.
 
@@ -172,6 +173,9 @@ def score_images(
     alpha : float, optional
         Error rate of the review band behind the ``verdict`` column; the model's own (set at
         training) when omitted.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure the images on a Dask cluster (``jobs`` is then ignored). This process stays the
+        one writer: the rows, their order, the lock and ``resume`` are as with ``jobs``.
     """
     out = Path(out)
     classes = [str(c) for c in model.classes]
@@ -214,7 +218,7 @@ def score_images(
                 todo = _copy_stored_rows(recorder, todo, fh, columns, summary)
             results = iter_records(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-                description="scoring",
+                description="scoring", engine=engine,
             )
             for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
                 rows = _score_rows(model, classes, chunk, alpha)

@@ -33,7 +33,13 @@ from topoclass.model import (
 )
 from topoclass.model.conformal import check_alpha
 from topoclass.model.neighbours import labelled_diagrams
-from topoclass.vectorize import FEATURE_SETS, AcquisitionContext, make_features
+from topoclass.vectorize import (
+    FEATURE_SETS,
+    SYMMETRY_KEYS,
+    AcquisitionContext,
+    OrderMeasureFeatures,
+    make_features,
+)
 
 #: Feature sets compared by ``select=True``, each with the chosen classifier.
 SELECT_FEATURE_SETS = ("two-bar", "order", "topology", "all")
@@ -65,11 +71,12 @@ def labelled_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray | None, list[RecordResult]]:
     """Pattern records of a label set's images; failed images are left out and returned apart."""
     results = measure_patterns(
         labels.images, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
-        description="features",
+        description="features", engine=engine,
     )
     keep = [i for i, r in enumerate(results) if r.ok]
     failures = [r for r in results if not r.ok]
@@ -87,6 +94,7 @@ def zoomed_records(
     jobs: int = 1,
     cache_dir: str | Path | None = None,
     progress: bool = False,
+    engine=None,
 ) -> tuple[list, np.ndarray, np.ndarray, int]:
     """Records of rescaled copies of a label set's images (:mod:`topoclass.augment`).
 
@@ -100,6 +108,7 @@ def zoomed_records(
     results = measure_patterns(
         paths, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
         description="zoomed copies", zooms=[f for _ in labels.images for f in factors],
+        engine=engine,
     )
     owner = [i for i in range(len(labels.images)) for _ in factors]
     keep = [k for k, r in enumerate(results) if r.ok]
@@ -129,6 +138,7 @@ def train_from_labels(
     zoom_range: tuple[float, float] | None = None,
     zoom_copies: int = 3,
     overwrite: bool = False,
+    engine=None,
 ) -> TrainingRun:
     """Train, cross-validate, calibrate and save a model from a label sheet.
 
@@ -172,6 +182,8 @@ def train_from_labels(
         Replace a model already in ``model_dir``: once the new model is trained, every file
         of the old one (its validation report too) is removed. Without it an existing model
         folder is refused, before any work.
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure the images on a Dask cluster (``jobs`` is then ignored); the model is the same.
     """
     check_alpha(alpha)
     if model_dir is not None:
@@ -185,7 +197,7 @@ def train_from_labels(
     settings = settings or FeatureSettings()
     labels = read_labels(labels_source, n_folds=cv)
     records, y, groups, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if failures:
         # Re-check the class counts on what is left, so CV fails with a clear message.
@@ -197,7 +209,8 @@ def train_from_labels(
 
         factors = zoom_factors(zoom_range, zoom_copies)
         extra, y_extra, g_extra, n_lost = zoomed_records(
-            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress
+            labels, settings, factors, jobs=jobs, cache_dir=cache_dir, progress=progress,
+            engine=engine,
         )
         if groups is None:  # the image is the group: its copies must not cross a split
             ok = {str(p) for p in labels.images} - {str(r.path) for r in failures}
@@ -218,14 +231,14 @@ def train_from_labels(
         model, comparison = select_model(
             records, y, groups, candidates=candidates, cv=cv, seed=seed,
             calibration=calibration, progress=progress, context=AcquisitionContext(),
-            alpha=alpha,
+            alpha=alpha, density=OrderMeasureFeatures(SYMMETRY_KEYS),
         )
     else:
         model = train_model(
             records, y, groups, features=make_features(feature_set),
             feature_set_name=feature_set, classifier=classifier, cv=cv,
             calibration=calibration, seed=seed, progress=progress, context=AcquisitionContext(),
-            alpha=alpha,
+            alpha=alpha, density=OrderMeasureFeatures(SYMMETRY_KEYS),
         )
     model.settings["features"] = dataclasses.asdict(settings)
     model.settings["training_images"] = training_image_sizes(records)
@@ -278,6 +291,7 @@ def validate_from_labels(
     cache_dir: str | Path | None = None,
     progress: bool = False,
     overrides: dict | None = None,
+    engine=None,
 ) -> ValidationRun:
     """Metrics of a saved model on a held-out labelled set, with a reliability table.
 
@@ -286,7 +300,7 @@ def validate_from_labels(
     report already in ``out`` is removed first, so that a failed run never leaves one that
     describes another model or another set; the report names the model file's hash.
     ``overrides`` replaces fields of the model's :class:`FeatureSettings` (for example the
-    region rule).
+    region rule); ``engine`` measures the images on a Dask cluster (:mod:`topoclass.cluster`).
     """
     model = load_model(model_dir)
     out = Path(out) if out is not None else Path(model_dir)
@@ -294,7 +308,7 @@ def validate_from_labels(
     labels = read_labels(labels_source)
     settings = dataclasses.replace(FeatureSettings.from_model(model), **(overrides or {}))
     records, y, _, failures = labelled_records(
-        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress
+        labels, settings, jobs=jobs, cache_dir=cache_dir, progress=progress, engine=engine
     )
     if not records:
         raise LabelSheetError(
@@ -399,6 +413,8 @@ def _check_after_failures(labels, y, groups, cv, failures) -> None:
         raise LabelSheetError(
             f"{labels.source}: too few usable images after {len(failures)} failed: "
             + "; ".join(problems)
+            + "; fix or replace the failed images (each message says why) or label more "
+            "images of those classes"
         )
 
 

@@ -151,6 +151,42 @@ def quick_model(seed: int = 0):
     return pipeline.set_params(classify__n_estimators=_TREES)
 
 
+class PoolFeatures:
+    """Scaled feature rows of the images of a labelling pool, kept from one ranking to the next.
+
+    The transform (all features, non-finite values as missing, median imputation, standard
+    scaling: the quick model's pipeline without its classifier) learns no labels, so it is
+    fitted on every measured image, labelled or not. Rows are kept per image key and only new
+    images are transformed; the transform is fitted again (and every row redone) when the
+    number of images has doubled since its last fit, so that the scale follows a pool that is
+    still being measured while ``n`` images cost at most about ``2 n`` transforms in all.
+    """
+
+    def __init__(self) -> None:
+        self._transform = None
+        self._fitted_on = 0
+        self._rows: dict = {}
+
+    def rows(self, keys: Sequence, records: Sequence) -> np.ndarray:
+        """The rows of ``records`` (one per key, keys hashable and unique), bounded at ±5."""
+        keys, records = list(keys), list(records)
+        if len(keys) != len(records):
+            raise ValueError(f"{len(keys)} keys but {len(records)} records")
+        if not keys:
+            return np.empty((0, 0))
+        if self._transform is None or len(keys) >= 2 * self._fitted_on:
+            self._transform = quick_model()[:-1].fit(records)
+            self._fitted_on, self._rows = len(keys), {}
+        new = [i for i, k in enumerate(keys) if k not in self._rows]
+        if new:
+            values = _bounded(self._transform.transform([records[i] for i in new]))
+            self._rows.update(zip((keys[i] for i in new), values, strict=True))
+        return np.vstack([self._rows[k] for k in keys])
+
+    def __len__(self) -> int:
+        return len(self._rows)
+
+
 def model_ready(labels: Sequence[str]) -> str | None:
     """None when every class has :data:`MIN_PER_CLASS` labels, else what is missing."""
     counts = Counter(labels)
@@ -184,27 +220,42 @@ def rank_records(labelled: Sequence, labels: Sequence[str], pool: Sequence, *,
     Returns
     -------
     list of Suggestion, best first.
+
+    See Also
+    --------
+    rank_rows : the same on rows of a :class:`PoolFeatures` kept between rankings.
     """
     if len(labelled) != len(labels):
         raise ValueError(f"{len(labelled)} labelled records but {len(labels)} labels")
     if not len(pool):
         return []
+    records = list(pool) + list(labelled)
+    scaled = PoolFeatures().rows(range(len(records)), records)
+    return rank_rows(scaled[len(pool):], labels, scaled[:len(pool)], count=count, seed=seed)
+
+
+def rank_rows(labelled: np.ndarray, labels: Sequence[str], pool: np.ndarray, *,
+              count: int | None = None, seed: int = 0) -> list[Suggestion]:
+    """:func:`rank_records` on scaled feature rows (from :meth:`PoolFeatures.rows`)."""
+    labelled = np.asarray(labelled, dtype=np.float64)
+    pool = np.asarray(pool, dtype=np.float64)
+    if labelled.shape[0] != len(labels):
+        raise ValueError(f"{labelled.shape[0]} labelled rows but {len(labels)} labels")
+    if not pool.shape[0]:
+        return []
+    labelled = labelled.reshape(-1, pool.shape[1])
     missing = model_ready(labels)
     if missing is not None:
         # No model yet: spread the first labels over the set (k-centre greedy alone).
-        scaler = quick_model(seed)[:-1]
-        scaled = _bounded(scaler.fit_transform(list(pool) + list(labelled)))
-        order, spread = diverse_order(scaled[:len(pool)], scaled[len(pool):], count=count)
+        order, spread = diverse_order(pool, labelled, count=count)
         return [Suggestion(int(i), None, None, 1.0, float(d),
                            f"spreads the labels over the set ({missing})")
                 for i, d in zip(order, spread, strict=True)]
-    model = quick_model(seed).fit(list(labelled), np.asarray(labels))
+    model = _ranking_classifier(seed).fit(labelled, np.asarray(labels))
     classes = [str(c) for c in model.classes_]
-    proba = model.predict_proba(list(pool))
+    proba = model.predict_proba(pool)
     uncertainty = margin_uncertainty(proba)
-    scaler = model[:-1]
-    order, spread = diverse_order(_bounded(scaler.transform(list(pool))),
-                                  _bounded(scaler.transform(list(labelled))), uncertainty, count)
+    order, spread = diverse_order(pool, labelled, uncertainty, count)
     out = []
     for i, d in zip(order, spread, strict=True):
         top = np.argsort(-proba[i], kind="stable")[:2]
@@ -226,8 +277,19 @@ def estimate_macro_f1(records: Sequence, labels: Sequence[str],
 
     The folds are the project's (:func:`topoclass.model.fold_splits`: stratified, grouped by
     sample when groups are given), with as many folds as the smallest class allows, at most
-    ``max_folds``. None when no two folds can be made yet.
+    ``max_folds``. None when no two folds can be made yet. The feature transform learns no
+    labels and is fitted on all ``records`` (as :class:`PoolFeatures` does on the page); the
+    classifier is fitted inside each fold.
     """
+    records = list(records)
+    rows = PoolFeatures().rows(range(len(records)), records) if records else np.empty((0, 0))
+    return estimate_from_rows(rows, labels, groups, seed=seed, max_folds=max_folds)
+
+
+def estimate_from_rows(rows: np.ndarray, labels: Sequence[str],
+                       groups: Sequence[str] | None = None, *, seed: int = 0,
+                       max_folds: int = 5) -> float | None:
+    """:func:`estimate_macro_f1` on scaled feature rows (from :meth:`PoolFeatures.rows`)."""
     y = np.asarray(labels)
     if model_ready(labels) is not None:
         return None
@@ -241,12 +303,11 @@ def estimate_macro_f1(records: Sequence, labels: Sequence[str],
         splits = fold_splits(y, g, k, seed)
     except TopoclassError:
         return None
+    rows = np.asarray(rows, dtype=np.float64)
     predicted = np.empty(y.shape[0], dtype=object)
-    model = quick_model(seed)
-    records = list(records)
     for train, test in splits:
-        fitted = clone(model).fit([records[i] for i in train], y[train])
-        predicted[test] = fitted.predict([records[i] for i in test])
+        fitted = _ranking_classifier(seed).fit(rows[train], y[train])
+        predicted[test] = fitted.predict(rows[test])
     return float(f1_score(y, predicted.astype(str), average="macro", zero_division=0))
 
 
@@ -291,6 +352,11 @@ def suggestion_json(path: Path, suggestion: Suggestion) -> dict:
     out = {"image": str(path), **asdict(suggestion)}
     out.pop("index")
     return out
+
+
+def _ranking_classifier(seed: int):
+    # The quick model's classifier alone, for rows that are already features.
+    return clone(quick_model(seed)[-1])
 
 
 def _bounded(scaled: np.ndarray) -> np.ndarray:

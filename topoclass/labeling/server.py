@@ -35,12 +35,13 @@ import numpy as np
 
 from topoclass.errors import TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, iter_records, measure_image
-from topoclass.labeling.ranking import estimate_macro_f1, model_ready, rank_records
+from topoclass.labeling.ranking import PoolFeatures, estimate_from_rows, model_ready, rank_rows
 from topoclass.labeling.sheet import LabelBook
 
 _IMAGE_PX = 1400  # longest side of the image sent to the page
 _THUMB_PX = 96
 _CURVE_STEP = 3  # a learning-curve point every this many labels (and at the current count)
+_SUGGESTED = 20  # suggestions sent per ranking: the page walks the first few, then asks again
 _SHOWN_MEASURES = ("psi6_global", "psi6_local_mean", "defect_fraction", "n5_fraction",
                    "n7_fraction", "nn_cv", "clark_evans_r", "h0_length_variance",
                    "h1_length_sum_per_site", "spacing_px", "n_sites")
@@ -83,6 +84,8 @@ class LabelSession:
         self._version = 0  # bumped at every change of labels or features
         self._ranked: tuple[int, dict] | None = None
         self._curve: dict[tuple, float | None] = {}
+        self._features = PoolFeatures()  # kept between rankings; only new images are added
+        self._ranking = threading.Lock()  # one ranking at a time (requests run in threads)
         self._measurer = threading.Thread(target=self._measure_all, daemon=True,
                                           name="topoclass-label-features")
 
@@ -131,37 +134,42 @@ class LabelSession:
 
     def suggestions(self) -> dict:
         """The labelling order of the measured, unlabelled images, and how the model does."""
+        with self._ranking:
+            return self._suggestions()
+
+    def _suggestions(self) -> dict:
         with self._lock:
             version = self._version
             if self._ranked is not None and self._ranked[0] == version:
                 return self._ranked[1]
+            measured = [n for n, r in enumerate(self.records) if r is not None and r.ok]
+            records = [self.records[n].record for n in measured]
             labelled, pool = [], []
-            for n, path in enumerate(self.images):
-                r = self.records[n]
-                if r is None or not r.ok:
-                    continue
+            for row, n in enumerate(measured):
+                path = self.images[n]
                 label = self.book.label_of(path)
                 if label is None:
-                    pool.append(n)
+                    pool.append((n, row))
                 else:
-                    labelled.append((self.book.key(path), r.record, label,
+                    labelled.append((self.book.key(path), row, label,
                                      self.book.group_of(path)))
             # Sheet order is labelling order: the learning curve follows it.
             order = {k: i for i, k in enumerate(self.book.keys())}
             labelled.sort(key=lambda item: order.get(item[0], len(order)))
-        records = [item[1] for item in labelled]
+        # Features of every measured image, transformed once each (see PoolFeatures).
+        rows = self._features.rows(measured, records)
         labels = [item[2] for item in labelled]
         waiting = model_ready(labels)
-        ranked = rank_records(records, labels, [self.records[n].record for n in pool],
-                              seed=self.seed)
-        curve = self._learning_curve(labelled)
+        ranked = rank_rows(rows[[item[1] for item in labelled]], labels,
+                           rows[[row for _, row in pool]], count=_SUGGESTED, seed=self.seed)
+        curve = self._learning_curve(labelled, rows)
         out = {
             "ready": waiting is None,
             "message": waiting or "",
             "labelled": len(labelled),
             "estimate": curve[-1][1] if curve and curve[-1][0] == len(labelled) else None,
             "curve": curve,
-            "order": [{"index": pool[s.index], "predicted": s.predicted,
+            "order": [{"index": pool[s.index][0], "predicted": s.predicted,
                        "confidence": s.confidence, "reason": s.reason} for s in ranked],
         }
         with self._lock:
@@ -215,7 +223,7 @@ class LabelSession:
             if self._stop.is_set():
                 return
 
-    def _learning_curve(self, labelled: list) -> list[list[float]]:
+    def _learning_curve(self, labelled: list, rows: np.ndarray) -> list[list[float]]:
         # Grouped-CV estimates on the sheet's first k labels, so the curve shows how the
         # estimate moved as labels were added; each prefix is computed once.
         points = []
@@ -225,8 +233,8 @@ class LabelSession:
             prefix = labelled[:k]
             key = tuple((item[0], item[2], item[3]) for item in prefix)
             if key not in self._curve:
-                self._curve[key] = estimate_macro_f1(
-                    [item[1] for item in prefix], [item[2] for item in prefix],
+                self._curve[key] = estimate_from_rows(
+                    rows[[item[1] for item in prefix]], [item[2] for item in prefix],
                     [item[3] for item in prefix], seed=self.seed)
             if self._curve[key] is not None:
                 points.append([k, self._curve[key]])

@@ -51,7 +51,8 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
                        model=None, details: int = MAX_DETAILS,
                        thumbnails: int = MAX_THUMBNAILS, jobs: int = 1,
                        cache_dir: str | Path | None = None, overwrite: bool = False,
-                       trend_charts: bool = True, progress: bool = False) -> Path:
+                       trend_charts: bool = True, progress: bool = False,
+                       settings: FeatureSettings | None = None) -> Path:
     """Write one self-contained HTML page for a ``scores.csv``.
 
     The page (no network access needed: inline CSS, inline JavaScript, images embedded or in
@@ -93,6 +94,9 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
         batch has at least :data:`MIN_TREND_IMAGES` scored images.
     progress : bool
         Show a progress bar while the images are read.
+    settings : FeatureSettings, optional
+        The site-finding settings the scoring used, when they differ from the model's (for
+        example a ``--region`` given to ``score``); default: the model's.
 
     Returns
     -------
@@ -128,7 +132,7 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     review = [r for r in ok if r.get("verdict") == "review"]
     failed = [r for r in rows if r.get("status") != "ok"]
     detail_ids = {id(r) for r in most_doubtful_first(ok, classes)[:max(details, 0)]}
-    settings = FeatureSettings.from_model(model)
+    settings = settings if settings is not None else FeatureSettings.from_model(model)
 
     work = [(n, row, _image_path(row["image"], base), n < thumbnails, id(row) in detail_ids)
             for n, row in enumerate(rows) if n < thumbnails or id(row) in detail_ids]
