@@ -73,7 +73,8 @@ def test_one_vacancy_gives_one_bar_from_a_to_sqrt3_a(exclude_border):
     centre = np.argmin(np.hypot(xy[:, 0] - 150, xy[:, 1] - 130))
     hole = xy[centre]
     xy = np.delete(xy, centre, axis=0)
-    d = pattern_persistence(_pattern(xy, shape, a), exclude_border=exclude_border)
+    d = pattern_persistence(_pattern(xy, shape, a), exclude_border=exclude_border,
+                            birth_edges="all")
     assert d.h1.shape == (1, 2)
     np.testing.assert_allclose(d.h1[0], [1.0, SQRT3], rtol=F32)
     assert not d.h1_truncated[0]
@@ -335,3 +336,27 @@ def test_vacancy_loop_in_a_jittered_lattice_is_kept_and_located_by_its_death_edg
     i, j = d.h1_death_edges[longest]
     assert np.hypot(*(0.5 * (xy[i] + xy[j]) - hole)) < a
     assert np.hypot(*(xy[i] - xy[j])) / a == pytest.approx(d.h1[longest, 1], rel=1e-6)
+
+
+@pytest.mark.parametrize("perfect", [False, True])
+def test_cut_birth_edges_match_the_cocycle_ones(perfect):
+    # Reference: ripser's representative cocycles (birth_edges="all"). Without them, the
+    # truncated bars' birth edges must be the same edges, every bar the same, and the finite
+    # bars' birth edges not kept. The perfect lattice has tied lengths (the cocycle re-run);
+    # the jittered cloud with holes wider than the limit has unique ones.
+    rng = np.random.default_rng(4)
+    if perfect:
+        xy = hexagonal_lattice((200, 200), 10.0, angle=0.0) / 10.0
+        centre = np.array([10.0, 10.0])
+        xy = xy[np.hypot(*(xy - centre).T) > 2.2]  # a hole wider than the limit
+    else:
+        xy = rng.uniform(0, 20, (900, 2))
+        xy = xy[np.hypot(*(xy - 10.0).T) > 3.0]
+    every = rips_persistence(xy, max_scale=1.6, birth_edges="all")
+    cut = rips_persistence(xy, max_scale=1.6, birth_edges="cut")
+    assert every["h1_truncated"].any()
+    for key in ("h0", "h0_edges", "h1", "h1_truncated", "h1_death_edges"):
+        np.testing.assert_array_equal(cut[key], every[key])
+    t = every["h1_truncated"]
+    np.testing.assert_array_equal(cut["h1_edges"][t], every["h1_edges"][t])
+    assert np.all(cut["h1_edges"][~t] == -1)

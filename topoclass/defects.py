@@ -87,13 +87,16 @@ def locate_defects(pattern: SitePattern, diagrams: Diagrams, *, loop_floor: floa
         b, d = (float(v) for v in diagrams.h1[k])
         i, j = (int(v) for v in diagrams.h1_edges[k])
         how = "birth edge"
-        xy = 0.5 * (pts[i] + pts[j])
         death_edge = diagrams.h1_death_edges[k]
         if not cut[k] and death_edge[0] >= 0:
             i, j = (int(v) for v in death_edge)
             xy, how = 0.5 * (pts[i] + pts[j]), "death edge"
         elif circles:
             xy, how = circles.pop(0), "largest empty circle"
+        elif i >= 0:
+            xy = 0.5 * (pts[i] + pts[j])
+        else:  # a closed loop without a death edge, birth edge not kept: nowhere to draw it
+            continue
         rows.append(_defect_row("h1", rank, len(order1), b, d, xy * spacing, i, j, bool(cut[k]),
                                 how, loop_floor))
     l0 = diagrams.lengths(0)

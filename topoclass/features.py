@@ -37,7 +37,7 @@ from topoclass.region import AnalysedRegion, analysed_region
 from topoclass.sites import SitePattern, find_sites
 
 #: Bumped whenever the cached record layout changes, so old cache entries are never misread.
-_CACHE_LAYOUT = 6
+_CACHE_LAYOUT = 7
 
 
 @dataclass(frozen=True)

@@ -68,7 +68,9 @@ class Diagrams:
     h1_edges : ndarray of int, shape (n1, 2)
         Site indices of an edge at which each H1 class is born. This edge can lie far from the
         loop: at the birth scale the region still open around the new loop may stretch across
-        the image, and the edge that closes it can be anywhere along it.
+        the image, and the edge that closes it can be anywhere along it. Kept for truncated
+        bars (they have no death edge to locate them); ``(-1, -1)`` for the others unless the
+        diagrams were computed with ``birth_edges="all"``.
     h1_death_edges : ndarray of int, shape (n1, 2)
         Site indices of the edge at which each H1 class dies: the longest edge of the triangle
         that fills the loop (a Rips triangle enters with its longest edge). That triangle lies
@@ -180,6 +182,7 @@ def pattern_persistence(
     max_scale: float = DEFAULT_MAX_SCALE,
     exclude_border: bool = True,
     border_guard: float = DEFAULT_BORDER_GUARD,
+    birth_edges: str = "cut",
 ) -> Diagrams:
     """H0 and H1 of the Vietoris–Rips filtration of a site pattern, in spacing units.
 
@@ -213,6 +216,11 @@ def pattern_persistence(
         the per-site statistics agree across crop sizes).
     border_guard : float
         Extra depth, in spacings, between border sites and the sites bars are charged to.
+    birth_edges : {"cut", "all"}
+        Which H1 bars get their birth edge (``Diagrams.h1_edges``): only the truncated ones
+        (the default; what border exclusion and the defect map use), or all of them. A birth
+        edge comes from ripser's representative cocycles, which cost time (measured in
+        benchmarks/RESULTS.md); see :func:`rips_persistence`.
 
     Returns
     -------
@@ -231,6 +239,7 @@ def pattern_persistence(
         guard=border_guard,
         source=pattern.source,
         delaunay=pattern.delaunay,
+        birth_edges=birth_edges,
     )
     return Diagrams(
         h0=raw["h0"],
@@ -256,6 +265,7 @@ def rips_persistence(
     guard: float = 0.0,
     source: str | None = None,
     delaunay: Triangulation | None = None,
+    birth_edges: str = "all",
 ) -> dict:
     """Radius-limited Vietoris–Rips persistence (H0, H1) of a planar point cloud.
 
@@ -278,6 +288,12 @@ def rips_persistence(
     delaunay : Triangulation, optional
         Delaunay neighbours of ``xy`` when the caller has them (:attr:`SitePattern.delaunay`);
         computed here when needed otherwise.
+    birth_edges : {"all", "cut"}
+        Birth edges of every H1 bar (from ripser's cocycles), or of the truncated bars only:
+        ripser then runs without cocycles and a truncated bar's birth edge is the one edge of
+        the graph with its birth length (float32, as ripser stores it); only when that length
+        is shared by several edges does ripser run again with cocycles. Other bars get
+        ``(-1, -1)``.
 
     Returns
     -------
@@ -312,7 +328,10 @@ def rips_persistence(
     pairs, dist = _radius_graph(pts, float(max_scale), tree)
     delaunay_edges = _DelaunayEdges(pts, inverse, delaunay)
     h0, h0_edges = _h0_from_emst(pts, pairs, dist, delaunay_edges)
-    h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), pairs, dist)
+    if birth_edges not in ("all", "cut"):
+        raise ValueError(f"birth_edges must be 'all' or 'cut', not {birth_edges!r}")
+    h1, h1_edges, h1_truncated = _h1_from_ripser(pts, float(max_scale), pairs, dist,
+                                                 every_birth_edge=birth_edges == "all")
     h1_death = _death_edges(pts, h1[:, 1], h1_truncated, pairs, dist, delaunay_edges)
 
     inner = np.ones(n, dtype=bool)
@@ -331,7 +350,7 @@ def rips_persistence(
         "h0": h0,
         "h0_edges": keep[h0_edges],
         "h1": h1,
-        "h1_edges": keep[h1_edges],
+        "h1_edges": np.where(h1_edges >= 0, keep[np.maximum(h1_edges, 0)], -1),
         "h1_death_edges": np.where(h1_death >= 0, keep[np.maximum(h1_death, 0)], -1),
         "h1_truncated": h1_truncated,
         "max_scale": float(max_scale),
@@ -459,7 +478,8 @@ def _charged_site(pts: np.ndarray, edges: np.ndarray, tree: cKDTree | None) -> n
 
 
 def _h1_from_ripser(
-    pts: np.ndarray, max_scale: float, pairs: np.ndarray, dist: np.ndarray
+    pts: np.ndarray, max_scale: float, pairs: np.ndarray, dist: np.ndarray,
+    *, every_birth_edge: bool = True,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """H1 bars, birth edges and truncation flags from ripser on the radius-limited graph."""
     n = pts.shape[0]
@@ -467,16 +487,45 @@ def _h1_from_ripser(
     if n < 3 or pairs.shape[0] < 3:
         return empty
     dm = sparse.coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(n, n))
-    res = ripser(dm, distance_matrix=True, maxdim=1, thresh=max_scale, do_cocycles=True)
+    res = ripser(dm, distance_matrix=True, maxdim=1, thresh=max_scale,
+                 do_cocycles=every_birth_edge)
     bars = np.asarray(res["dgms"][1], dtype=np.float64).reshape(-1, 2)
-    cocycles = res["cocycles"][1]
     if bars.shape[0] == 0:
         return empty
-    edges = _birth_edges(pts, bars[:, 0], cocycles)
     truncated = ~np.isfinite(bars[:, 1])
+    if every_birth_edge:
+        edges = _birth_edges(pts, bars[:, 0], res["cocycles"][1])
+    else:
+        edges = np.full((bars.shape[0], 2), -1, dtype=np.int64)
+        found = _unique_length_edges(bars[truncated, 0], dist)
+        if found is None:  # a tied length: only the cocycles tell which edge it was
+            res = ripser(dm, distance_matrix=True, maxdim=1, thresh=max_scale,
+                         do_cocycles=True)
+            bars = np.asarray(res["dgms"][1], dtype=np.float64).reshape(-1, 2)
+            truncated = ~np.isfinite(bars[:, 1])
+            cut = np.flatnonzero(truncated)
+            found = _birth_edges(pts, bars[cut, 0], [res["cocycles"][1][k] for k in cut])
+        else:
+            found = np.sort(pairs[found], axis=1)
+        edges[truncated] = found
     bars[truncated, 1] = max_scale
     order = np.lexsort((bars[:, 1], bars[:, 0]))
     return bars[order], edges[order], truncated[order]
+
+
+def _unique_length_edges(births: np.ndarray, dist: np.ndarray) -> np.ndarray | None:
+    """Indices of the graph edges whose float32 length is each birth value, or None when a
+    value matches no edge or several (then only ripser's cocycles can tell)."""
+    if births.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    length = dist.astype(np.float32)
+    order = np.argsort(length, kind="stable")
+    values = births.astype(np.float32)
+    lo = np.searchsorted(length[order], values, side="left")
+    hi = np.searchsorted(length[order], values, side="right")
+    if np.any(hi - lo != 1):
+        return None
+    return order[lo]
 
 
 def _birth_edges(pts: np.ndarray, births: np.ndarray, cocycles: list) -> np.ndarray:
