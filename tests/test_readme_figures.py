@@ -128,3 +128,15 @@ def test_benchmark_metrics_reads_the_goal_rows_the_scripts_write():
     rows = figures.benchmark_metrics(ROOT / "benchmarks" / "report.md")
     assert {"report_vs_score", "detail_kb_per_image"} <= set(rows)
     assert float(rows["report_vs_score"][0]) > 0
+
+
+def test_every_readme_picture_is_written_by_a_script():
+    pictures = re.findall(r"!\[[^\]]*\]\(([^)]+\.png)\)", README)
+    assert {"docs/overlay.png", "docs/defects.png", "docs/report.png"} <= set(pictures)
+    for picture in pictures:
+        assert (ROOT / picture).is_file(), f"README shows {picture}, which is not in the repository"
+        name = Path(picture).name
+        assert any(name in p.read_text(encoding="utf-8") for p in SCRIPTS), \
+            f"no script in tools/, docs/ or benchmarks/ writes {picture}"
+    for name in ("overlay.png", "defects.png", "report.png"):  # docs/make_figures.py keeps them
+        assert (ROOT / "docs" / name).stat().st_size < 300_000, f"docs/{name} is too large"
