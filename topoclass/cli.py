@@ -650,7 +650,6 @@ def _human_summary(summary: dict) -> str:
     return "\n".join(lines)
 
 
-@contextlib.contextmanager
 def _image_paths(inputs: list[Path]) -> list[Path]:
     """The images the arguments name; none at all is a usage error."""
     from topoclass.images import collect_image_paths
@@ -662,6 +661,7 @@ def _image_paths(inputs: list[Path]) -> list[Path]:
     return paths
 
 
+@contextlib.contextmanager
 def _cluster_engine(cluster: str | None, jobs: int):
     """The ``with`` block of --cluster (None without it); says where the work goes, on stderr."""
     if cluster is None:
