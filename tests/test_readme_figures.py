@@ -140,3 +140,34 @@ def test_every_readme_picture_is_written_by_a_script():
             f"no script in tools/, docs/ or benchmarks/ writes {picture}"
     for name in ("overlay.png", "defects.png", "report.png"):  # docs/make_figures.py keeps them
         assert (ROOT / "docs" / name).stat().st_size < 300_000, f"docs/{name} is too large"
+
+
+def test_commands_come_from_the_bash_fence_right_above_each_block():
+    doc = ("```bash\ntopoclass demo\n```\ntext\n\n```bash\ntopoclass train a.csv --model m\n```\n"
+           "<!-- out:train:start -->\nold\n<!-- out:train:end -->\n")
+    assert figures.command_blocks(doc) == [("train", ["topoclass train a.csv --model m"])]
+    with pytest.raises(SystemExit, match="no ```bash fence right above"):
+        figures.command_blocks("Some text.\n<!-- out:nothing:start -->\n<!-- out:nothing:end -->\n")
+
+
+def test_score_rows_come_from_the_csv_the_score_command_wrote(tmp_path):
+    demo = tmp_path / "topoclass-demo"
+    demo.mkdir()
+    rows = ["image,status,message", "production/images/a.png,ok,",
+            "production/images/vacancies_002.png,ok,", 'production/images/zz_damaged_transfer.png,'
+            'error,"cut off, copy again"', "production/images/zz_not_a_membrane.png,ok,odd"]
+    (demo / "b.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+    run = figures.WalkThrough(demo, "2026-01-02", "test machine",
+                              commands={"score": ["topoclass score m x --out b.csv"]})
+    text = figures.FILLERS["score-rows"](run)
+    assert text.splitlines()[1:5] == [rows[0], *rows[2:]]  # header and the three, not a.png
+    assert "2026-01-02 (test machine)" in text
+
+
+def test_check_mode_ignores_only_the_stamps():
+    run_a = figures.WalkThrough(Path("."), "2026-01-02", "A, load average 1.0", demo_seconds=90)
+    run_b = figures.WalkThrough(Path("."), "2026-03-04", "B, load average 9.0", demo_seconds=130)
+    a, b = ("```text\nscored 25\n```\n" + r.stamp("out") + "\n" + figures.FILLERS["demo-time"](r)
+            for r in (run_a, run_b))
+    assert figures._without_stamps(a) == figures._without_stamps(b)
+    assert figures._without_stamps(a) != figures._without_stamps(a.replace("25", "24"))
