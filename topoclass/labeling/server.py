@@ -480,7 +480,7 @@ def _png_of(path: Path, side: int, max_pixels: int) -> bytes:
 
 @lru_cache(maxsize=32)
 def _sites_cached(path: str, mtime: float, settings: FeatureSettings) -> dict:
-    from topoclass.report.figures import coordination_class, site_coordination
+    from topoclass.order import coordination_class, site_coordination
 
     pattern = measure_image(path, settings).pattern
     rows, cols = pattern.shape
