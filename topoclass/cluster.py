@@ -97,7 +97,7 @@ class ClusterEngine:
             self._cluster = distributed.LocalCluster(
                 n_workers=self.spec.local_workers, threads_per_worker=1, processes=True,
                 host="127.0.0.1", dashboard_address=_dashboard_address(),
-                silence_logs=logging.ERROR,
+                silence_logs=logging.CRITICAL,  # shutdown chatter is not news
             )
             self.client = distributed.Client(self._cluster, set_as_default=False)
             return self
