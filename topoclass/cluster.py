@@ -145,6 +145,9 @@ class ClusterEngine:
         workers = len(self.client.scheduler_info().get("workers", {})) if self.client else 0
         where = "local cluster on 127.0.0.1" if self._cluster is not None else self.spec.address
         board = f"; dashboard {self.dashboard}" if self.dashboard else ""
+        if not workers:
+            return (f"cluster: {where} has no workers yet; the images wait until one connects "
+                    f"(`dask worker {self.spec}`){board}")
         return f"cluster: {where}, {workers} worker(s), {self.n_threads()} thread(s){board}"
 
     # -- work ---------------------------------------------------------------------------------
