@@ -91,6 +91,7 @@ GOALS = {
     "site_finding_2048_s": ("<=", 1.0),
     "report_vs_score": ("<=", 0.5),
     "detail_kb_per_image": ("<=", 150.0),
+    "active_label_saving": (">=", 0.30),
 }
 
 SCALING_SPACING = 10.0  # px; the rendered images of the scaling run
@@ -534,6 +535,9 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
                 progress=log))
             rips = timed("rips", lambda: measure_rips(cfg["rips_sites"],
                                                       repeats=cfg["rips_limited_repeats"]))
+            from bench_labeling import measure_labeling
+
+            labeling = timed("labeling", lambda: measure_labeling(mode, jobs=2, log=log))
 
     values = {
         "rips_speedup_3k": rips["speedup"],
@@ -549,6 +553,7 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
         "site_finding_2048_s": sites["best_s"],
         "report_vs_score": batch_report["report_vs_score"],
         "detail_kb_per_image": batch_report["detail_kb_per_image"],
+        "active_label_saving": labeling["active_label_saving"],
     }
     for key, value in values.items():
         op, goal = GOALS[key]
@@ -563,6 +568,7 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
                           "featurize": featurize, "jobs": jobs, "site_finding": sites,
                           "cluster": cluster,
                           "report": batch_report,
+                          "labeling": {k: v for k, v in labeling.items() if k != "runs"},
                           "accuracy": {k: v for k, v in accuracy.items() if k != "rows"}}
     results["sizes"] = _sizes_text(cfg)
     results["seconds"] = seconds
@@ -570,6 +576,7 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
     results["load_end"] = os.getloadavg()
     results["all_pass"] = all(results[k]["pass"] for k in GOALS if GOALS[k][0] != "figure")
     results["_accuracy_full"] = accuracy
+    results["_labeling_full"] = labeling
     return results
 
 
@@ -642,6 +649,7 @@ def table_text(results: dict) -> str:
                            f"{min(d['report']['score_s']):.2f} s (bench_report.py)",
         "detail_kb_per_image": f"{d['report']['detail_views']} detail views, "
                                f"{d['report']['detail_bytes'] / 1e6:.2f} MB",
+        "active_label_saving": _labeling_text(d["labeling"]),
     }
     lines = ["| metric | value | goal | pass | measured on |", "| --- | --- | --- | --- | --- |"]
     for key in GOALS:
@@ -806,6 +814,7 @@ def main(argv=None) -> int:
     log(f"mode {mode}: {_sizes_text(MODES[mode])}")
     results = run_all(mode, log=log)
     accuracy = results.pop("_accuracy_full")
+    labeling = results.pop("_labeling_full")
     if args.json:
         print(json.dumps(results, default=_json_default, indent=1))
     else:
@@ -822,7 +831,12 @@ def main(argv=None) -> int:
         RESULTS.write_text(results_markdown(results), encoding="utf-8")
         ACCURACY.write_text(accuracy_markdown(accuracy), encoding="utf-8")
         _update_readme(results)
-        log(f"wrote {RESULTS}, {ACCURACY} and the accuracy block of {README}")
+        import bench_labeling
+
+        bench_labeling.write_figure(labeling)
+        bench_labeling.OUT.write_text(bench_labeling.markdown(labeling), encoding="utf-8")
+        log(f"wrote {RESULTS}, {ACCURACY}, {bench_labeling.OUT.name} and the accuracy block "
+            f"of {README}")
     if args.mapping:
         import bench_mapping
 
@@ -844,6 +858,14 @@ def _sizes_text(cfg: dict) -> str:
             f"{cfg['jobs_size']}² x {cfg['jobs_rounds']} round(s); site finding 2048² best of "
             f"{cfg['sites_repeats']}; accuracy per_class={a['per_class']}, size={a['size']}, "
             f"seed={a['seed']}, cv={a['cv']}")
+
+
+def _labeling_text(d: dict) -> str:
+    m, (lo, hi) = d["mean_needed"], d["saving_ci95"]
+    c = d["config"]
+    return (f"labels to held-out macro-F1 {c['target']}: suggested {m['suggested']:.1f}, random "
+            f"{m['random']:.1f} ({c['seeds']} seeds; saving 95 % interval {lo:.2f} to {hi:.2f}, "
+            f"ceiling {d['ceiling']:.2f}; bench_labeling.py, labeling.md)")
 
 
 def _update_readme(results: dict) -> None:

@@ -136,8 +136,12 @@ def test_trained_model_has_a_band_from_its_out_of_fold_scores():
                         classifier="logistic", alpha=0.1)
     band = model.review_band
     assert band is not None and band.alpha_ == 0.1
+    # Fitted on the out-of-fold probabilities as scoring reports them: faded by each training
+    # image's out-of-fold unfamiliarity.
     oof = model.cv_report.oof_proba
-    expected = ReviewBand(0.1).fit(oof, model.cv_report.y_true, model.classes)
+    oof_doubt = model.novelty.oof_distances_ / model.novelty.threshold_
+    expected = ReviewBand(0.1).fit(model.doubt.apply(oof, oof_doubt), model.cv_report.y_true,
+                                   model.classes)
     assert band.thresholds_ == pytest.approx(expected.thresholds_)
     proba, score, _ = model.assess(X)
     verdicts = model.verdicts(proba, score)

@@ -222,3 +222,29 @@ def test_bad_patterns_get_a_pattern_error_naming_the_file():
     hull = np.array([[5.0, 5.0], [95.0, 5.0], [50.0, 50.0], [30.0, 6.0], [70.0, 7.0]])
     with pytest.raises(PatternError, match="pores_5.tif.*bounded Voronoi cell"):
         order_measures(_pattern(hull, (100, 100), 10.0, source="pores_5.tif"))
+
+
+@pytest.mark.parametrize("angle", [0.0, 17.0, 45.0])
+def test_psi4_tells_a_square_lattice_from_a_triangular_one(angle):
+    # Fourfold bond order over the 4 nearest neighbours (common practice for square order):
+    # every bond of a perfect square lattice is at a multiple of 90 degrees from the lattice
+    # angle, so |psi4| = 1 at every interior site, any rotation. On a perfect triangular lattice
+    # the 6 neighbours are tied, so exact values depend on which 4 are taken; with a small
+    # jitter they are far below 1 (|1 + e^{4i 60} + e^{4i 120} + 1| / 4 = 0.25 for one choice).
+    from topoclass.order import psi4
+    from topoclass.synth import square_lattice
+
+    shape = (300, 320)
+    sq = square_lattice(shape, 12.0, angle=angle)
+    m = order_measures(_pattern(sq, shape, 12.0))
+    assert m["psi4_local_mean"] == pytest.approx(1.0, abs=1e-9)
+    assert m["psi4_global"] == pytest.approx(1.0, abs=1e-9)
+    hexagonal = hexagonal_lattice(shape, 12.0, angle=angle, jitter=0.03, seed=1)
+    m_hex = order_measures(_pattern(hexagonal, shape, 12.0))
+    assert m_hex["psi4_local_mean"] < 0.6 and m_hex["psi6_local_mean"] > 0.8
+    # The definition written out for one site: the four nearest bonds, exp(4 i theta).
+    j = int(np.argmin(np.hypot(*(sq - sq.mean(axis=0)).T)))
+    d = np.hypot(*(sq - sq[j]).T)
+    nearest = np.argsort(d)[1:5]
+    theta = np.arctan2(*(sq[nearest] - sq[j])[:, ::-1].T)
+    assert psi4(sq)[j] == pytest.approx(np.exp(4j * theta).mean(), abs=1e-9)

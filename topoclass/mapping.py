@@ -4,8 +4,9 @@ A use case beside :mod:`topoclass.scoring`. The image is read piece by piece
 (:mod:`topoclass.bigimage`) and cut into overlapping tiles; each tile is measured exactly as a
 whole micrograph is (:func:`topoclass.features.measure_micrograph`) and scored with the same
 probabilities, novelty checks, review band and rows as ``score`` (the scoring module's own
-row builder). So that a tile is seen at the scale the model learnt, its side holds as many
-sites as the median training image (recorded in the model card) unless the user gives it.
+row builder, :func:`topoclass.scoring.score_rows`). So that a tile is seen at the scale the
+model learnt, its side holds as many sites as the median training image (recorded in the model
+card) unless the user gives it.
 
 Geometry: the analysed region is cut into a grid of *cores* that cover it exactly once; each
 tile is its core widened by half the overlap on every side (shifted inwards at the frame, so
@@ -18,9 +19,7 @@ beside it, ``resume=True`` keeps the finished tiles of a killed run.
 
 from __future__ import annotations
 
-import csv
 import dataclasses
-import io
 import json
 import math
 import os
@@ -35,15 +34,16 @@ from topoclass._progress import progress_bar
 from topoclass.bigimage import DEFAULT_MEMORY_LIMIT_MB, LargeImage, open_large_image
 from topoclass.errors import PatternError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, measure_micrograph
-from topoclass.scoring import (
-    AMOUNT_COLUMNS,
-    CAUTION,
-    MEASURE_COLUMNS,
-    _chunks,
-    _format_row,
-    _OutputLock,
-    _score_rows,
+from topoclass.rowfile import (
+    WriterLock,
+    csv_header,
+    csv_line,
+    in_chunks,
+    read_rows,
+    reopen_checked,
+    write_durably,
 )
+from topoclass.scoring import AMOUNT_COLUMNS, CAUTION, MEASURE_COLUMNS, score_rows
 from topoclass.sites import estimate_spacing
 
 TILES_FILE = "tiles.csv"
@@ -287,24 +287,22 @@ def map_image(
         summary = MapSummary(out_dir=out_dir, plan=plan, spacing_px=spacing,
                              pixel_size_nm=pixel_size, notes=notes)
         out_dir.mkdir(parents=True, exist_ok=True)
-        with _OutputLock(tiles_csv):
+        with WriterLock(tiles_csv):
             done = _prepare(out_dir, columns, header, resume=resume)
             todo = [i for i in range(len(plan)) if tuple(plan.boxes[i]) not in done]
             summary.skipped = len(plan) - len(todo)
             with open(tiles_csv, "a", newline="", encoding="utf-8") as fh:
-                for chunk in _chunks(_tile_results(big, plan, todo, settings, jobs, progress),
-                                     16, 5.0):
+                for chunk in in_chunks(_tile_results(big, plan, todo, settings, jobs,
+                                                     progress)):
                     idx = [i for i, _ in chunk]
-                    rows = _score_rows(model, classes, [r for _, r in chunk], alpha)
+                    rows = score_rows(model, classes, [r for _, r in chunk], alpha)
                     for i, row in zip(idx, rows, strict=True):
                         _place(row, plan, i)
                         if row["status"] == "ok":
                             summary.scored += 1
                         else:
                             summary.failed += 1
-                    fh.write("".join(_format_row(row, columns) for row in rows))
-                    fh.flush()
-                    os.fsync(fh.fileno())
+                    write_durably(fh, rows, columns)
     summary.totals = map_totals(read_tiles(tiles_csv), classes, pixel_size)
     _write_totals(out_dir / TOTALS_FILE, summary.totals)
     return summary
@@ -312,10 +310,7 @@ def map_image(
 
 def read_tiles(path: str | Path) -> list[dict[str, str]]:
     """Rows of a ``tiles.csv`` (an incomplete last line, from a crash, is ignored)."""
-    text = Path(path).read_text(encoding="utf-8")
-    if text and not text.endswith("\n"):
-        text = text[: text.rfind("\n") + 1]
-    return list(csv.DictReader(io.StringIO(text)))
+    return read_rows(path)
 
 
 def read_map_header(out_dir: str | Path) -> dict:
@@ -457,8 +452,7 @@ def _prepare(out_dir: Path, columns: list[str], header: dict, *, resume: bool) -
     tiles_csv = out_dir / TILES_FILE
     if not (resume and tiles_csv.exists()):
         _write_json(out_dir / MAP_FILE, header)
-        tiles_csv.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
-                             encoding="utf-8")
+        tiles_csv.write_text(csv_header(columns), encoding="utf-8")
         return set()
     earlier = read_map_header(out_dir)
     same = ("image_sha256", "shape", "tile_px", "overlap_px", "classes")
@@ -467,22 +461,17 @@ def _prepare(out_dir: Path, columns: list[str], header: dict, *, resume: bool) -
             f"{tiles_csv}: was made from another image, model or tile size; resume only with "
             "the same ones, or pass --overwrite"
         )
-    text = tiles_csv.read_text(encoding="utf-8")
-    first = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
-    if first != columns:
-        raise TopoclassError(f"{tiles_csv}: its columns do not match this model or version; "
-                             "pass --overwrite to map again")
-    if not text.endswith("\n"):  # a crash mid-write left half a row: that tile runs again
-        tiles_csv.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
+    reopen_checked(tiles_csv, columns, f"{tiles_csv}: its columns do not match this model or "
+                   "version; pass --overwrite to map again")
     return {tuple(int(r[k]) for k in ("x0", "y0", "x1", "y1")) for r in read_tiles(tiles_csv)}
 
 
 def _write_totals(path: Path, totals: list[dict]) -> None:
     keys = ["verdict", "tiles", "area_px", "fraction", "area_um2"]
     with open(path, "w", newline="", encoding="utf-8") as fh:
-        fh.write(_format_row(dict(zip(keys, keys, strict=True)), keys))
+        fh.write(csv_header(keys))
         for t in totals:
-            fh.write(_format_row({k: ("" if t[k] is None else t[k]) for k in keys}, keys))
+            fh.write(csv_line({k: ("" if t[k] is None else t[k]) for k in keys}, keys))
 
 
 def _write_json(path: Path, data: dict) -> None:

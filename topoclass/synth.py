@@ -90,6 +90,55 @@ def hexagonal_lattice(
     return xy[keep]
 
 
+def square_lattice(
+    shape: tuple[int, int],
+    spacing: float,
+    *,
+    angle: float = 0.0,
+    jitter: float = 0.0,
+    margin: float = 0.0,
+    seed: int | None = 0,
+) -> np.ndarray:
+    """Sites of a square lattice covering an image: a pattern of another symmetry.
+
+    Not a class of the demo: a membrane never grows this way, so a model trained on
+    hexagonal patterns must call such an image unfamiliar. Parameters as in
+    :func:`hexagonal_lattice`.
+    """
+    rng = np.random.default_rng(seed)
+    rows, cols = int(shape[0]), int(shape[1])
+    n = int(np.ceil((0.5 * np.hypot(rows, cols) + 2 * spacing) / spacing)) + 1
+    i, j = np.meshgrid(np.arange(-n, n + 1), np.arange(-n, n + 1), indexing="ij")
+    u, v = spacing * i.ravel(), spacing * j.ravel()
+    theta = np.deg2rad(angle)
+    xy = np.column_stack([np.cos(theta) * u - np.sin(theta) * v + cols / 2.0,
+                          np.sin(theta) * u + np.cos(theta) * v + rows / 2.0])
+    if jitter > 0:
+        xy = xy + rng.normal(scale=jitter * spacing, size=xy.shape)
+    return xy[_in_frame(xy, shape, margin=margin)]
+
+
+def square_micrograph(*, size: int = 320, seed: int, spacing: float | None = None) -> np.ndarray:
+    """An invented micrograph of a square pattern, drawn like the membrane images.
+
+    Spacing, jitter, pore size, blur and noise are drawn from the ranges of
+    :func:`draw_sample`, so only the symmetry differs from the training images.
+    """
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x5C]))
+    if spacing is None:
+        spacing = float(rng.uniform(*SPACING_RANGE_PX))
+    xy = square_lattice((size, size), spacing, angle=float(rng.uniform(0, 90)),
+                        jitter=float(rng.uniform(0.02, 0.04)), margin=-1.5 * spacing,
+                        seed=int(rng.integers(2**63 - 1)))
+    return render_micrograph(xy, (size, size), spacing * float(rng.uniform(0.26, 0.34)),
+                             edge_width=float(rng.uniform(0.5, 1.2)),
+                             blur=float(rng.uniform(0.5, 1.3)),
+                             illumination=float(rng.uniform(0.0, 0.35)),
+                             noise=float(rng.uniform(0.04, 0.2)),
+                             contrast=float(rng.uniform(0.45, 0.7)),
+                             seed=int(rng.integers(2**63 - 1)))
+
+
 def render_micrograph(
     xy: np.ndarray,
     shape: tuple[int, int],
@@ -421,6 +470,30 @@ def draw_sample(kind: str, *, seed: int) -> dict:
     return sample
 
 
+def harder_sample(kind: str, *, seed: int) -> dict:
+    """Sample parameters of a harder, shifted population than :func:`draw_sample`'s.
+
+    What a new process window or a worse instrument day delivers: more positional jitter
+    (0.045-0.06 spacings against 0.02-0.045), fewer vacancies (1.5-3 % against 3-9 %), two
+    grains at a small misorientation (5-10 degrees) instead of several clearly turned ones,
+    and heavier noise (0.2-0.35 against 0.04-0.2). For measuring how a model trained
+    on the usual population behaves on images unlike its training set (invented data).
+    """
+    sample = draw_sample(kind, seed=seed)
+    rng = np.random.default_rng(np.random.SeedSequence([int(seed), 0x4A3D]))
+    sample["noise"] = float(rng.uniform(0.2, 0.35))
+    sample["shifted"] = True
+    if "jitter" in sample:
+        sample["jitter"] = float(rng.uniform(0.045, 0.06))
+        sample["jitter_max"] = 0.065
+    if kind == "vacancies":
+        sample["vacancy_fraction"] = float(rng.uniform(0.015, 0.03))
+        sample["vacancy_min"] = 0.012
+    elif kind == "grains":
+        sample["misorientation_deg"] = float(rng.uniform(5.0, 10.0))
+    return sample
+
+
 def write_dataset(
     out_dir: str | Path,
     *,
@@ -429,6 +502,7 @@ def write_dataset(
     seed: int = 0,
     groups_per_class: int | None = None,
     progress: bool = False,
+    shifted: bool = False,
     data_bars: float = 0.0,
     rims: bool = False,
 ) -> Path:
@@ -454,6 +528,8 @@ def write_dataset(
         images.
     progress : bool
         Show a progress bar on stderr.
+    shifted : bool
+        Draw the samples from :func:`harder_sample` (a harder, shifted population).
     data_bars : float
         Fraction of the images exported with an instrument data bar (:func:`add_data_bar`,
         dark or bright at random); the truth records its first row as ``data_bar_row``.
@@ -497,7 +573,8 @@ def write_dataset(
         members = np.array_split(np.arange(per_class), groups_per_class)
         for g, idx in enumerate(members):
             group = f"sample-{numbers[k * groups_per_class + g]:0{width}d}"
-            sample = draw_sample(kind, seed=int(rng.integers(2**63 - 1)))
+            draw = harder_sample if shifted else draw_sample
+            sample = draw(kind, seed=int(rng.integers(2**63 - 1)))
             for i in idx:
                 image_seed = int(rng.integers(2**63 - 1))
                 jobs.append((kind, int(i), group, sample, bool(tiff[i]), image_seed))
@@ -554,15 +631,23 @@ def _check_kind(kind: str) -> None:
 def _image_amounts(kind: str, sample: dict, rng: np.random.Generator) -> dict:
     """Per-image amounts of disorder around the sample's characteristic values."""
     params = {}
+    # A sample made by harder_sample carries its own, wider bounds.
+    jitter_hi = float(sample.get("jitter_max", 0.045))
+    vacancy_lo = float(sample.get("vacancy_min", 0.02))
     if "jitter" in sample:
-        params["jitter"] = float(np.clip(sample["jitter"] + rng.normal(0, 0.002), 0.02, 0.045))
+        params["jitter"] = float(np.clip(sample["jitter"] + rng.normal(0, 0.002), 0.02,
+                                         jitter_hi))
     if kind == "vacancies":
         params["vacancy_fraction"] = float(
-            np.clip(sample["vacancy_fraction"] * rng.uniform(0.8, 1.25), 0.02, 0.10)
+            np.clip(sample["vacancy_fraction"] * rng.uniform(0.8, 1.25), vacancy_lo, 0.10)
         )
         params["merge_fraction"] = float(
             np.clip(sample["merge_fraction"] * rng.uniform(0.8, 1.25), 0.004, 0.03)
         )
+    elif kind == "grains" and "misorientation_deg" in sample:
+        first = float(rng.uniform(0.0, 60.0))
+        params["n_grains"] = 2
+        params["angles_deg"] = [first, first + float(sample["misorientation_deg"])]
     elif kind == "grains":
         low = 3 + int(round(3 * sample["grain_density"]))
         params["n_grains"] = int(rng.integers(low, min(low + 3, 9)))

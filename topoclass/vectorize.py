@@ -46,6 +46,7 @@ from topoclass.records import (
 
 __all__ = [
     "DEFAULT_ORDER_KEYS",
+    "SYMMETRY_KEYS",
     "FEATURE_SETS",
     "BarcodeStatistics",
     "BettiCurveFeatures",
@@ -61,6 +62,10 @@ __all__ = [
 #: pattern (the others of :data:`topoclass.order.ORDER_MEASURE_KEYS` describe the acquisition,
 #: such as the lattice angle, or repeat these).
 DEFAULT_ORDER_KEYS: tuple[str, ...] = ORDER_MEASURE_KEYS[:7]
+
+#: Order measures of the density novelty check: the default ones plus fourfold order (psi4),
+#: so that a lattice of another symmetry stands out from every training image.
+SYMMETRY_KEYS: tuple[str, ...] = DEFAULT_ORDER_KEYS + ("psi4_local_mean",)
 
 #: Named feature sets accepted by :func:`make_features`.
 FEATURE_SETS: dict[str, str] = {

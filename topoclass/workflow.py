@@ -33,7 +33,13 @@ from topoclass.model import (
 )
 from topoclass.model.conformal import check_alpha
 from topoclass.model.neighbours import labelled_diagrams
-from topoclass.vectorize import FEATURE_SETS, AcquisitionContext, make_features
+from topoclass.vectorize import (
+    FEATURE_SETS,
+    SYMMETRY_KEYS,
+    AcquisitionContext,
+    OrderMeasureFeatures,
+    make_features,
+)
 
 #: Feature sets compared by ``select=True``, each with the chosen classifier.
 SELECT_FEATURE_SETS = ("two-bar", "order", "topology", "all")
@@ -225,14 +231,14 @@ def train_from_labels(
         model, comparison = select_model(
             records, y, groups, candidates=candidates, cv=cv, seed=seed,
             calibration=calibration, progress=progress, context=AcquisitionContext(),
-            alpha=alpha,
+            alpha=alpha, density=OrderMeasureFeatures(SYMMETRY_KEYS),
         )
     else:
         model = train_model(
             records, y, groups, features=make_features(feature_set),
             feature_set_name=feature_set, classifier=classifier, cv=cv,
             calibration=calibration, seed=seed, progress=progress, context=AcquisitionContext(),
-            alpha=alpha,
+            alpha=alpha, density=OrderMeasureFeatures(SYMMETRY_KEYS),
         )
     model.settings["features"] = dataclasses.asdict(settings)
     model.settings["training_images"] = training_image_sizes(records)

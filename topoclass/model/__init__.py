@@ -9,6 +9,7 @@ The model stage of the pipeline, one concept per module:
 ``evaluation``            metrics, reliability tables, grouped cross-validation
 ``novelty``               is an image like the training images (Mahalanobis, ranges)
 ``conformal``             the review band: conformal prediction sets and verdicts
+``doubt``                 probabilities that fade toward the prior near the training edge
 ``trained``               the trained model; train, select, validate
 ``storage``               model folder: skops archive, JSON card, trusted types only
 ========================  ===============================================================
@@ -39,6 +40,7 @@ from topoclass.model.conformal import (
     ReviewBand,
     conformal_quantile,
 )
+from topoclass.model.doubt import DoubtFade
 from topoclass.model.evaluation import (
     CVReport,
     cross_validate_model,
@@ -48,7 +50,7 @@ from topoclass.model.evaluation import (
 )
 from topoclass.model.folds import fold_splits
 from topoclass.model.neighbours import LabelledDiagrams, labelled_diagrams, sliced_distance
-from topoclass.model.novelty import MahalanobisNovelty, RangeNovelty
+from topoclass.model.novelty import MahalanobisNovelty, NeighbourDensityNovelty, RangeNovelty
 from topoclass.model.pipeline import (
     CLASSIFIERS,
     DEFAULT_CLASSIFIER,
@@ -69,7 +71,8 @@ from topoclass.model.trained import TrainedModel, select_model, train_model, val
 
 __all__ = [
     "CALIBRATION_METHODS", "CARD_FILE", "CARD_FORMAT", "CLASSIFIERS", "CVReport",
-    "DEFAULT_ALPHA", "DEFAULT_CLASSIFIER", "REVIEW", "ReviewBand", "UNFAMILIAR",
+    "DEFAULT_ALPHA", "DEFAULT_CLASSIFIER", "DoubtFade", "NeighbourDensityNovelty", "REVIEW",
+    "ReviewBand", "UNFAMILIAR",
     "conformal_quantile", "ISOTONIC_MIN_PER_CLASS", "ISOTONIC_MIN_SAMPLES", "MODEL_FILE",
     "MahalanobisNovelty", "ModelVersionWarning", "NonFiniteAsMissing", "REPORT_FILE",
     "RangeNovelty", "TrainedModel", "build_pipeline", "choose_calibration",

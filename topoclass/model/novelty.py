@@ -114,3 +114,85 @@ class RangeNovelty:
                                                       self.high_, strict=True)
                         if r > widen])
         return out
+
+
+class NeighbourDensityNovelty:
+    """Flags images whose order measures sit where no training image is: a local-outlier check.
+
+    The Mahalanobis distance treats the training cloud as one ellipsoid; the training classes
+    sit in separate clumps of the order measures, with empty space between them that the
+    ellipsoid counts as familiar. A square lattice (psi4 high, psi6 low), a shaken lattice or
+    an odd mixture of measures lands in such space. The local outlier factor (Breunig, Kriegel,
+    Ng & Sander 2000, "LOF: identifying density-based local outliers"; scikit-learn's
+    :class:`~sklearn.neighbors.LocalOutlierFactor` with ``novelty=True``) compares the density
+    of an image's neighbourhood with that of its nearest training images: about 1 inside the
+    cloud, larger outside it.
+
+    ``measures`` is a transformer giving a few named columns (for example the order measures
+    with psi4, :func:`topoclass.vectorize.symmetry_measures`); they are standardised first.
+    The threshold follows the rule of :class:`MahalanobisNovelty`: ``margin`` times the
+    ``quantile`` of the out-of-fold factors of the training images.
+
+    ``score(X) = factor / threshold``; above 1 means unfamiliar.
+    """
+
+    def __init__(self, measures, *, n_neighbors: int = 10, quantile: float = 0.99,
+                 margin: float = 1.1):
+        self.measures = measures
+        self.n_neighbors = n_neighbors
+        self.quantile = quantile
+        self.margin = margin
+
+    def _fit_one(self, X, y):
+        from sklearn.neighbors import LocalOutlierFactor
+        from sklearn.pipeline import make_pipeline
+        from sklearn.preprocessing import StandardScaler
+
+        n = len(X) if not hasattr(X, "shape") else X.shape[0]
+        k = max(1, min(int(self.n_neighbors), n - 1))
+        return make_pipeline(clone(self.measures), StandardScaler(),
+                             LocalOutlierFactor(n_neighbors=k, novelty=True)).fit(X, y)
+
+    def fit(self, X, y=None, *, folds: np.ndarray | None = None) -> NeighbourDensityNovelty:
+        """Fit on all training images; ``folds`` (one fold id per image) sets the threshold."""
+        n = len(X) if not hasattr(X, "shape") else X.shape[0]
+        folds = np.arange(n) % 5 if folds is None else np.asarray(folds)
+        y_arr = None if y is None else np.asarray(y)
+        oof = np.empty(n, dtype=np.float64)
+        for k in np.unique(folds):
+            test, train = np.flatnonzero(folds == k), np.flatnonzero(folds != k)
+            part = self._fit_one(_safe_indexing(X, train),
+                                 None if y_arr is None else y_arr[train])
+            oof[test] = -part.score_samples(_safe_indexing(X, test))
+        self.model_ = self._fit_one(X, y)
+        self.names_ = [str(c) for c in self.model_[0].get_feature_names_out()]
+        values = np.asarray(self.model_[0].transform(X), dtype=np.float64)
+        self.low_, self.high_ = np.nanmin(values, axis=0), np.nanmax(values, axis=0)
+        self.oof_factors_ = oof
+        self.threshold_ = max(float(np.quantile(oof, self.quantile)) * self.margin, 1e-12)
+        return self
+
+    def factor(self, X) -> np.ndarray:
+        """Local outlier factor of each image among the training images."""
+        return -self.model_.score_samples(X)
+
+    def score(self, X) -> np.ndarray:
+        return self.factor(X) / self.threshold_
+
+    def reasons(self, X) -> list[list[str]]:
+        """Per unfamiliar image: the factor, and the measures beyond the training range."""
+        score = self.score(X)
+        values = np.asarray(self.model_[0].transform(X), dtype=np.float64)
+        out = []
+        for s, row in zip(score, values, strict=True):
+            if s <= 1.0:
+                out.append([])
+                continue
+            beyond = [f"{name} {v:.3g} (training {lo:.3g}-{hi:.3g})"
+                      for name, v, lo, hi in zip(self.names_, row, self.low_, self.high_,
+                                                 strict=True) if not lo <= v <= hi]
+            words = f"order measures where no training image is ({s:.3g} times the allowed " \
+                    "local outlier factor"
+            words += f"; {', '.join(beyond)})" if beyond else ")"
+            out.append([words])
+        return out

@@ -92,6 +92,11 @@ def save_model(model: TrainedModel, directory: str | Path, *,
                     else model.range_check.tolerance},
         "review_band": None if model.review_band is None else jsonable(
             model.review_band.describe()),
+        "doubt": None if model.doubt is None else jsonable(model.doubt.describe()),
+        "density_check": None if model.density_check is None else {
+            "method": "local outlier factor of the standardised order measures with psi4",
+            "measures": model.density_check.names_,
+            "threshold": model.density_check.threshold_},
         "settings": jsonable(model.settings),
         "cv": jsonable(model.cv_report.summary()),
         "versions": package_versions(),

@@ -14,9 +14,10 @@ from topoclass._progress import step_progress
 from topoclass.errors import TopoclassError
 from topoclass.model.calibration import choose_calibration, fit_calibrated, limit_by_evidence
 from topoclass.model.conformal import DEFAULT_ALPHA, UNFAMILIAR, ReviewBand
+from topoclass.model.doubt import DoubtFade
 from topoclass.model.evaluation import CVReport, cross_validate_model, metrics_from_probabilities
 from topoclass.model.neighbours import LabelledDiagrams
-from topoclass.model.novelty import MahalanobisNovelty, RangeNovelty
+from topoclass.model.novelty import MahalanobisNovelty, NeighbourDensityNovelty, RangeNovelty
 from topoclass.model.pipeline import DEFAULT_CLASSIFIER, build_pipeline
 
 
@@ -47,6 +48,10 @@ class TrainedModel:
     review_band : ReviewBand or None
         Conformal prediction sets from the out-of-fold probabilities (None in models written
         before the band existed: their verdict is the top class unless unfamiliar).
+    density_check : NeighbourDensityNovelty or None
+        Local-outlier check of the order measures with psi4.
+    doubt : DoubtFade or None
+        The fade of the probabilities toward equal odds with unfamiliarity.
     neighbours : LabelledDiagrams or None
         H1 diagrams, labels and thumbnails of the training images, to show the labelled images
         nearest to a scored one (:mod:`topoclass.model.neighbours`); None in older models.
@@ -64,15 +69,19 @@ class TrainedModel:
     settings: dict
     range_check: RangeNovelty | None = None
     review_band: ReviewBand | None = None
+    density_check: NeighbourDensityNovelty | None = None
+    doubt: DoubtFade | None = None
     neighbours: LabelledDiagrams | None = None
 
     def predict_proba(self, X) -> np.ndarray:
         """Calibrated probability of each class, columns in the order of ``classes``.
 
         Limited by the size of the training set (:func:`limit_by_evidence`), as in the
-        cross-validation that measured them.
+        cross-validation that measured them, then faded toward equal odds as the image
+        nears the edge of the training set (:class:`DoubtFade`), when the model has the fade.
+        The top class is the same either way.
         """
-        return limit_by_evidence(self.estimator.predict_proba(X), self.settings["n_samples"])
+        return self.assess(X)[0]
 
     def predict(self, X) -> np.ndarray:
         """The most probable class of each image."""
@@ -81,13 +90,11 @@ class TrainedModel:
     def unfamiliarity(self, X) -> np.ndarray:
         """Novelty score per image; above 1 means farther from the training set than allowed.
 
-        The larger of the Mahalanobis score over the model's features and, when the model has
-        one, the range check of the acquisition measures (:class:`RangeNovelty`).
+        The largest of the Mahalanobis score over the model's features and, when the model has
+        them, the range check of the acquisition measures (:class:`RangeNovelty`) and the
+        local-outlier check of the order measures (:class:`NeighbourDensityNovelty`).
         """
-        score = self.novelty.score(X)
-        if self.range_check is not None:
-            score = np.maximum(score, self.range_check.score(X))
-        return score
+        return self.assess(X)[1]
 
     def unfamiliar_reasons(self, X) -> list[list[str]]:
         """Per image, why it is unfamiliar, in words (empty for familiar images)."""
@@ -99,20 +106,30 @@ class TrainedModel:
         The same as :meth:`predict_proba`, :meth:`unfamiliarity` and
         :meth:`unfamiliar_reasons`, computing each novelty check once (scoring calls this).
         """
-        proba = self.predict_proba(X)
+        proba = limit_by_evidence(self.estimator.predict_proba(X), self.settings["n_samples"])
         mahalanobis = self.novelty.score(X)
-        score = mahalanobis
-        ranges: list[list[str]] = [[] for _ in range(len(mahalanobis))]
+        reasons: list[list[str]] = [[] for _ in range(len(mahalanobis))]
+        # The distance-like checks, measured out-of-fold in training: they set the fade.
+        graded = mahalanobis
+        density = getattr(self, "density_check", None)
+        if density is not None:
+            graded = np.maximum(graded, density.score(X))
+            for words, more in zip(reasons, density.reasons(X), strict=True):
+                words.extend(more)
+        score = graded
         if self.range_check is not None:
+            # A pass/fail check: every value inside the range scores 1 / (1 + tolerance), so
+            # it flags an image but says nothing about how typical a familiar one is.
             score = np.maximum(score, self.range_check.score(X))
-            ranges = self.range_check.reasons(X)
-        reasons = []
-        for m, r in zip(mahalanobis, ranges, strict=True):
-            words = list(r)
+            for words, more in zip(reasons, self.range_check.reasons(X), strict=True):
+                words[:0] = more
+        for words, m in zip(reasons, mahalanobis, strict=True):
             if m > 1.0:
                 words.append(f"features far from every training image ({m:.3g} times the "
                              "allowed distance)")
-            reasons.append(words)
+        doubt = getattr(self, "doubt", None)
+        if doubt is not None:
+            proba = doubt.apply(proba, np.where(score > 1.0, score, graded))
         return proba, score, reasons
 
     def is_unfamiliar(self, X) -> np.ndarray:
@@ -137,7 +154,7 @@ class TrainedModel:
 def train_model(X, y, groups=None, *, features, feature_set_name: str,
                 classifier: str = DEFAULT_CLASSIFIER, cv: int = 5, calibration: str = "auto",
                 seed: int = 0, progress=None, context=None,
-                alpha: float = DEFAULT_ALPHA) -> TrainedModel:
+                alpha: float = DEFAULT_ALPHA, density=None) -> TrainedModel:
     """Cross-validate, then fit the calibrated model and its novelty detector on all data.
 
     Parameters
@@ -169,6 +186,9 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
     alpha : float
         Error rate of the review band (:class:`ReviewBand`), fitted on the out-of-fold
         probabilities of the cross-validation.
+    density : scikit-learn transformer or None
+        Measures for the local-outlier check of :class:`NeighbourDensityNovelty` (for example
+        ``OrderMeasureFeatures(SYMMETRY_KEYS)``); None for none.
 
     Returns
     -------
@@ -184,13 +204,13 @@ def train_model(X, y, groups=None, *, features, feature_set_name: str,
         return _fit_final(pipeline, X, y, groups, report, feature_set_name=feature_set_name,
                           classifier=classifier, method=method, reason=reason,
                           calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
-                          context=context, alpha=alpha)
+                          context=context, alpha=alpha, density=density)
 
 
 def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]],
                  cv: int = 5, seed: int = 0, calibration: str = "auto",
-                 progress=None, context=None,
-                 alpha: float = DEFAULT_ALPHA) -> tuple[TrainedModel, list[dict]]:
+                 progress=None, context=None, alpha: float = DEFAULT_ALPHA,
+                 density=None) -> tuple[TrainedModel, list[dict]]:
     """Compare (feature set, transformer, classifier) candidates and train the best.
 
     Every candidate is cross-validated on the same folds exactly as :func:`train_model` would
@@ -231,7 +251,7 @@ def select_model(X, y, groups=None, *, candidates: Sequence[tuple[str, Any, str]
                            feature_set_name=rows[best]["feature_set"],
                            classifier=rows[best]["classifier"], method=method, reason=reason,
                            calibration_requested=calibration, cv=cv, seed=seed, bar=bar,
-                           context=context, alpha=alpha)
+                           context=context, alpha=alpha, density=density)
     model.settings["selected_from"] = [dict(r) for r in rows]
     return model, rows
 
@@ -258,14 +278,23 @@ def validate_model(model: TrainedModel, X, y) -> dict:
 
 def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, method, reason,
                calibration_requested, cv, seed, bar, context=None,
-               alpha=DEFAULT_ALPHA) -> TrainedModel:
+               alpha=DEFAULT_ALPHA, density=None) -> TrainedModel:
     y = np.asarray(y)
-    band = ReviewBand(alpha).fit(report.oof_proba, report.y_true, report.classes)
     groups_arr = None if groups is None else np.asarray(groups)
     bar.step("fitting the novelty detector")
     preprocess = Pipeline(clone(pipeline).steps[:-1])
     novelty = MahalanobisNovelty(preprocess).fit(X, y, folds=report.fold)
     range_check = None if context is None else RangeNovelty(context).fit(X, y)
+    density_check = (None if density is None
+                     else NeighbourDensityNovelty(density).fit(X, y, folds=report.fold))
+    # Out-of-fold unfamiliarity of each training image: what the fade starts from, and what
+    # the review band must see, so that it is fitted on the probabilities scoring reports.
+    oof_doubt = novelty.oof_distances_ / novelty.threshold_
+    if density_check is not None:
+        oof_doubt = np.maximum(oof_doubt, density_check.oof_factors_ / density_check.threshold_)
+    doubt = DoubtFade().fit(report.classes, oof_doubt)
+    band = ReviewBand(alpha).fit(doubt.apply(report.oof_proba, oof_doubt), report.y_true,
+                                 report.classes)
     bar.advance(cv)
     bar.step("fitting the calibrated model")
     estimator = fit_calibrated(pipeline, X, y, groups_arr, method, cv, seed)
@@ -289,4 +318,5 @@ def _fit_final(pipeline, X, y, groups, report, *, feature_set_name, classifier, 
         calibration_reason=reason,
         class_counts={str(c): int(n) for c, n in zip(classes, counts, strict=True)},
         settings=settings, range_check=range_check, review_band=band,
+        density_check=density_check, doubt=doubt,
     )
