@@ -67,7 +67,7 @@ from topoclass.labeling.ranking import (  # noqa: E402
     rank_records,
     rank_rows,
 )
-from topoclass.synth import KINDS, _write_png8, draw_sample, make_micrograph  # noqa: E402
+from topoclass.synth import KINDS, draw_sample, make_micrograph, write_grey_png  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 OUT, FIGURE = HERE / "labeling.md", HERE / "labeling_curves.png"
@@ -103,7 +103,7 @@ def make_set(folder: Path, n_samples: int, per_sample: int, size: int, seed: int
                 image, _ = make_micrograph(kind, size=size, seed=int(rng.integers(2**63 - 1)),
                                            sample=sample, amounts=hard_amounts(kind, rng))
                 path = folder / f"{kind}_{s:02d}_{i}.png"
-                _write_png8(path, image)
+                write_grey_png(path, image)
                 paths.append(path)
                 labels.append(kind)
                 groups.append(f"{kind}-{s}")
@@ -223,7 +223,7 @@ def measure_page(n_images: int, size: int, *, jobs: int = 2, log=print) -> dict:
             image, _ = make_micrograph(kind, size=size, seed=int(rng.integers(2**63 - 1)))
             paths.append(folder / f"{n:05d}_{kind}.png")
             kinds.append(kind)
-            _write_png8(paths[-1], image)
+            write_grey_png(paths[-1], image)
         log(f"page: made {n_images} images of {size} px in {time.perf_counter() - t0:.0f} s")
         book = LabelBook(tmp / "labels.csv", KINDS)
         session = LabelSession(paths, book, cache_dir=tmp / "cache", jobs=jobs)

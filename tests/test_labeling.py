@@ -262,7 +262,7 @@ def pool_files(small_dataset, tmp_path_factory):
     in the training set's truth files), as more images of known samples do on a real line.
     """
     from topoclass.synth import KINDS, make_micrograph
-    from topoclass.synth import _write_png8 as write_png
+    from topoclass.synth import write_grey_png as write_png
 
     truth = small_dataset.parent / "truth"
     samples = {k: json.loads((truth / f"{k}_000.json").read_text())["sample"] for k in KINDS}

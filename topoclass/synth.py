@@ -603,7 +603,7 @@ def write_dataset(
             if as_tiff:
                 _write_tiff16(out / name, image, truth["pixel_size_nm"])
             else:
-                _write_png8(out / name, image)
+                write_grey_png(out / name, image)
             record = {"image": name, "label": kind, "group": group,
                       "format": "tiff16" if as_tiff else "png8"}
             record.update(truth)
@@ -1031,7 +1031,8 @@ def _in_frame(xy: np.ndarray, shape, margin: float = 0.0) -> np.ndarray:
     )
 
 
-def _write_png8(path: Path, image: np.ndarray) -> None:
+def write_grey_png(path: Path, image: np.ndarray) -> None:
+    """Save an image in [0, 1] as an 8-bit grey PNG (values clipped, rounded to 0..255)."""
     # PIL writes no time chunk, so the bytes depend on the pixels only.
     data = np.round(np.clip(image, 0, 1) * 255).astype(np.uint8)
     Image.fromarray(data).save(path, format="PNG")
