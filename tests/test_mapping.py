@@ -147,15 +147,20 @@ def test_totals_count_cores_once():
 
 
 @pytest.fixture(scope="module")
-def pasted_mosaic(tmp_path_factory):
+def pasted_mosaic(tmp_path_factory, small_dataset):
     """Four invented micrographs of known class pasted 2 x 2, as a tiled 16-bit TIFF."""
-    from topoclass.synth import draw_sample, make_micrograph
+    from topoclass.synth import draw_sample, grains_per_spacing2, make_micrograph
 
+    # The grains quarter holds grains of the training images' size (in spacings): with the
+    # few grains of one training image spread over a quarter, a tile can sit inside one grain.
+    n_grains = round(grains_per_spacing2(small_dataset.parent) * (QUARTER / SPACING) ** 2)
     quarters = []
     for k, kind in enumerate(KINDS):
         sample = draw_sample(kind, seed=100 + k)
         sample["spacing_range_px"] = [SPACING, SPACING]
-        quarters.append(make_micrograph(kind, size=QUARTER, seed=200 + k, sample=sample)[0])
+        amounts = {"n_grains": n_grains} if kind == "grains" else None
+        quarters.append(make_micrograph(kind, size=QUARTER, seed=200 + k, sample=sample,
+                                        amounts=amounts)[0])
     mosaic = np.block([[quarters[0], quarters[1]], [quarters[2], quarters[3]]])
     path = tmp_path_factory.mktemp("mosaic") / "mosaic.tif"
     tifffile.imwrite(path, (mosaic * 65535).astype(np.uint16), tile=(128, 128),

@@ -272,15 +272,19 @@ def score(
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
-    recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
-                                              len(paths), note, alpha)
+    # The cluster first: a scheduler that cannot be reached must not leave a started batch
+    # in the store; the store is closed however scoring ends.
     with _cluster_engine(cluster, jobs) as engine:
-        summary = score_images(trained, paths, out, settings=settings, jobs=jobs,
-                               resume=resume, overwrite=overwrite, cache_dir=cache,
-                               progress=True, recorder=recorder, alpha=alpha,
-                               engine=engine)
-    if recorder is not None:
-        recorder.store.close()
+        recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
+                                                  len(paths), note, alpha)
+        try:
+            summary = score_images(trained, paths, out, settings=settings, jobs=jobs,
+                                   resume=resume, overwrite=overwrite, cache_dir=cache,
+                                   progress=True, recorder=recorder, alpha=alpha,
+                                   engine=engine)
+        finally:
+            if recorder is not None:
+                recorder.store.close()
     typer.echo(summary_text(summary))
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
