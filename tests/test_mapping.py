@@ -344,3 +344,25 @@ def test_map_on_a_local_cluster_writes_the_rows_of_one_process(tmp_path, small_m
     assert "cluster: local cluster on 127.0.0.1, 2 worker(s)" in captured.err
     assert (out / "tiles.csv").read_text() == (one / "tiles.csv").read_text()
     assert (out / "map.png").exists() and "Caution" in captured.out
+
+
+def test_a_png_is_refused_on_a_remote_cluster_in_one_line(tmp_path, small_model):
+    # A PNG is read whole into a temporary file on this machine; a remote scheduler's workers
+    # cannot see it, so the map is refused before any tile is sent (nothing is connected here:
+    # the check comes first).
+    from types import SimpleNamespace
+
+    from PIL import Image
+
+    from topoclass.cluster import parse_cluster
+    from topoclass.errors import TopoclassError
+    from topoclass.model import load_model
+
+    path = tmp_path / "field.png"
+    Image.fromarray((np.random.default_rng(3).random((200, 300)) * 255).astype(np.uint8)).save(
+        path)
+    remote = SimpleNamespace(spec=parse_cluster("tcp://127.0.0.1:8786"))
+    with pytest.raises(TopoclassError) as info:
+        map_image(load_model(small_model.directory), path, tmp_path / "map", engine=remote)
+    text = str(info.value)
+    assert "field.png" in text and "tiled TIFF" in text and "\n" not in text
