@@ -243,7 +243,8 @@ def markdown(result: dict, params: dict, alpha: float, elapsed: float, quick: bo
         "wrong_caught": (wrong_caught, wrong_caught >= 0.8,
                          f"{n_wrong} wrong answers on (b) over all seeds"),
         "ece_shifted": (agg("shifted", "ece"), agg("shifted", "ece") <= 0.05,
-                        f"without the fade {agg('shifted', 'ece_unfaded'):.3f}; "
+                        f"bare calibrated classifier (no evidence limit, no fade) "
+                        f"{agg('shifted', 'ece_unfaded'):.3f}; "
                         f"sklearn bins {agg('shifted', 'ece_sklearn'):.3f}"),
         "odd_flagged": (odd_flagged, odd_flagged == len(result["odd"]),
                         f"of {len(result['odd'])}"),
@@ -290,7 +291,11 @@ def markdown(result: dict, params: dict, alpha: float, elapsed: float, quick: bo
         ece = np.mean([r["sweep"][a]["shifted"]["ece"] for r in rows])
         lines.append(f"| {a:g}{' (default)' if a == DoubtFade().at_threshold else ''} | "
                      f"{cov:.3f} | {rsr:.3f} | {caught}/{wrong} | {ece:.3f} |")
-    lines += ["", "Share of images each novelty check flags (a / b):", ""]
+    lines += ["", "Beyond the threshold every row fades (an unfamiliar image keeps at most the "
+              "weight divided by the squared unfamiliarity), so the shifted images the density "
+              "check flags, most of them answered right, carry near-equal odds in every row: "
+              "that, not the fade below the threshold, is most of the ECE on (b).", "",
+              "Share of images each novelty check flags (a / b):", ""]
     for r in rows:
         parts = ", ".join(f"{name} {r['held']['flagged_by'][name]:.3f} / "
                           f"{r['shifted']['flagged_by'][name]:.3f}"
