@@ -11,11 +11,12 @@ shared libraries count once per process: an upper bound. ``slope`` is the least-
 of log(time) against log(megapixels); 1 means time per megapixel stays constant.
 
 Accuracy: an invented mosaic (pore spacing 13 px) whose left part is ordered, top right grains
-(pasted from 320-px grain fields, so grains stay the size of the training images') and bottom
-right disordered, with borders at x = 0.52 and y = 0.47 of the side, so not on tile
-seams. A tile lies wholly inside a region when its whole rectangle does; it carries the region's
-class when its verdict (class, review or unfamiliar) is that class; ``predicted`` (the top
-class whatever the verdict) is reported beside it.
+(one field with as many grains per spacing squared as the training images, so grains are their
+size and every boundary is one the generator grew) and bottom right disordered, with borders
+at x = 0.52 and y = 0.47 of the side, so not on tile seams. A tile lies wholly inside a
+region when its whole rectangle does; it carries the region's class when its verdict (class,
+review or unfamiliar) is that class; ``predicted`` (the top class whatever the verdict) is
+reported beside it, and the misses by verdict.
 
 Run from the repository root: ``PYTHONPATH=. python benchmarks/bench_mapping.py``.
 """
@@ -43,8 +44,11 @@ for _p in (str(ROOT), str(HERE)):
 from _machine import cpu_model  # noqa: E402
 
 RESULTS = HERE / "RESULTS_mapping.md"
+# The issue's accuracy goal, "tiles wholly inside a region carry its class >= 95 %", is held
+# to the verdict (a tile under review or unfamiliar does not carry a class) and, beside it, to
+# the top class whatever the verdict.
 GOALS = {"time_slope": ("<=", 1.1), "peak_rss_144mp_mb": ("<=", 2000.0),
-         "mosaic_tiles_right": (">=", 0.95)}
+         "mosaic_verdict_right": (">=", 0.95), "mosaic_top_class_right": (">=", 0.95)}
 SIZES = {"full": (4000, 8000, 12000), "quick": (2000, 3000, 4000)}
 _KINDS = ("ordered", "vacancies", "grains", "disordered")
 
@@ -135,8 +139,9 @@ def measure_mosaic(workdir: Path, model_dir: Path, side: int = 2400) -> dict:
 
     from topoclass.mapping import map_image, read_tiles
     from topoclass.model import load_model
-    from topoclass.synth import draw_sample, make_micrograph
+    from topoclass.synth import draw_sample, grains_per_spacing2, make_micrograph
 
+    bx, by = int(0.52 * side), int(0.47 * side)
     fields = {}
     for k, kind in enumerate(("ordered", "grains", "disordered")):
         sample = draw_sample(kind, seed=500 + k)
@@ -144,13 +149,15 @@ def measure_mosaic(workdir: Path, model_dir: Path, side: int = 2400) -> dict:
         if kind != "grains":
             fields[kind] = make_micrograph(kind, size=side, seed=600 + k, sample=sample)[0]
             continue
-        # One field this large would hold a few huge grains, and a tile inside one of them is
-        # an ordered patch; fields of 320 px keep grains the size of the training images'.
-        n = -(-side // 320)
-        pieces = [[make_micrograph(kind, size=320, seed=700 + n * i + j, sample=sample)[0]
-                   for j in range(n)] for i in range(n)]
-        fields[kind] = np.block(pieces)[:side, :side]
-    bx, by = int(0.52 * side), int(0.47 * side)
+        # One field of the grains region's size, with as many grains per spacing squared as the
+        # training images hold, so grains are the training images' size and every boundary is
+        # one the generator grew (pasting separate fields would add seams it never makes).
+        edge = max(side - bx, by)
+        n = max(2, round(grains_per_spacing2(workdir / "train") * (edge / 13.0) ** 2))
+        grains = make_micrograph(kind, size=edge, seed=700, sample=sample,
+                                 amounts={"n_grains": n})[0]
+        fields[kind] = np.zeros((side, side), np.float32)
+        fields[kind][:by, bx:] = grains[:by, : side - bx]
     mosaic = fields["ordered"].copy()
     mosaic[:by, bx:] = fields["grains"][:by, bx:]
     mosaic[by:, bx:] = fields["disordered"][by:, bx:]
@@ -160,6 +167,7 @@ def measure_mosaic(workdir: Path, model_dir: Path, side: int = 2400) -> dict:
     out = workdir / "mosaic-map"
     map_image(load_model(model_dir), path, out, jobs=2, overwrite=True)
     inside = right = right_top = 0
+    misses: dict[str, int] = {}
     for r in read_tiles(out / "tiles.csv"):
         x0, y0, x1, y1 = (int(r[k]) for k in ("x0", "y0", "x1", "y1"))
         if x1 <= bx:
@@ -173,15 +181,20 @@ def measure_mosaic(workdir: Path, model_dir: Path, side: int = 2400) -> dict:
         inside += 1
         right += r["status"] == "ok" and r["verdict"] == truth
         right_top += r["status"] == "ok" and r["predicted"] == truth
+        if not (r["status"] == "ok" and r["verdict"] == truth):
+            got = r["verdict"] if r["status"] == "ok" else "not measured"
+            misses[f"{truth} as {got}"] = misses.get(f"{truth} as {got}", 0) + 1
     return {"side": side, "inside": inside, "right": right / inside,
-            "right_predicted": right_top / inside, "borders": (bx, by)}
+            "right_predicted": right_top / inside, "borders": (bx, by), "misses": misses,
+            "grains": n}
+
 
 
 def markdown(result: dict, quick: bool) -> str:
     s, m = result["scaling"], result["mosaic"]
     big = s["rows"][-1]
     values = {"time_slope": s["slope"], "peak_rss_144mp_mb": big["peak_rss_mb"],
-              "mosaic_tiles_right": m["right"]}
+              "mosaic_verdict_right": m["right"], "mosaic_top_class_right": m["right_predicted"]}
     rows = []
     for key, (op, goal) in GOALS.items():
         v = values[key]
@@ -204,7 +217,11 @@ def markdown(result: dict, quick: bool) -> str:
                      f"{r['peak_rss_mb']:.0f} | {r['parent_peak_rss_mb']:.0f} |")
     lines += ["", f"- mosaic {m['side']}² px, borders at x = {m['borders'][0]}, y = "
               f"{m['borders'][1]}: {m['inside']} tiles wholly inside a region; verdict right "
-              f"{m['right']:.1%}, top class right {m['right_predicted']:.1%}", ""]
+              f"{m['right']:.1%}, top class right {m['right_predicted']:.1%}; the grains "
+              f"region is one field of {m['grains']} grains",
+              "- tiles whose verdict missed: " + (", ".join(f"{v} {k}" for k, v in
+                                                          sorted(m["misses"].items()))
+                                                  or "none"), ""]
     return "\n".join(lines)
 
 

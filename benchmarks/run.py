@@ -56,7 +56,7 @@ MODES = {
         "scaling_repeats": {1000: 5, 3000: 5, 10000: 3, 30000: 2, 100000: 2},
         "rss_sites": 100000,
         "featurize_repeats": 7,
-        "jobs_images_per_class": 10, "jobs_size": 384, "jobs_rounds": 4,
+        "jobs_images_per_class": 10, "jobs_size": 384, "jobs_rounds": 4, "cluster_images": 200,
         "sites_repeats": 3,
         "accuracy": {"per_class": 24, "size": 320, "seed": 2026, "cv": 5},
     },
@@ -69,7 +69,7 @@ MODES = {
         "scaling_repeats": {1000: 3, 3000: 3, 10000: 2, 30000: 1, 100000: 1},
         "rss_sites": 100000,
         "featurize_repeats": 5,
-        "jobs_images_per_class": 10, "jobs_size": 384, "jobs_rounds": 2,
+        "jobs_images_per_class": 10, "jobs_size": 384, "jobs_rounds": 2, "cluster_images": 200,
         "sites_repeats": 3,
         "accuracy": {"per_class": 12, "size": 320, "seed": 2026, "cv": 5},
     },
@@ -80,11 +80,18 @@ GOALS = {
     "diagrams_identical": ("==", True),
     "scaling_slope": ("<=", 1.2),
     "peak_rss_100k_mb": ("<=", 1024.0),
-    "featurize_vs_floor": ("<=", 5.0),
-    "jobs2_speedup": (">=", 1.7),
+    # Restated in issue 13: the end-to-end features over what cannot be done without (the
+    # floor plus ripser alone), the parallel speed-up over the free capacity, and the cluster.
+    "features_vs_engine": ("<=", 1.5),
+    "jobs2_vs_capacity": (">=", 0.9),
+    "cluster2_vs_jobs2": (">=", 0.85),
+    # Reported as figures, no longer pass/fail goals.
+    "featurize_vs_floor": ("figure", None),
+    "jobs2_speedup": ("figure", None),
     "site_finding_2048_s": ("<=", 1.0),
     "report_vs_score": ("<=", 0.5),
     "detail_kb_per_image": ("<=", 150.0),
+    "active_label_saving": (">=", 0.30),
 }
 
 SCALING_SPACING = 10.0  # px; the rendered images of the scaling run
@@ -95,7 +102,14 @@ RTOL = 1e-9
 # Why two goals are missed, in words only: every figure in RESULTS.md comes from the run that
 # wrote it; the profiling history (before/after of each change) lives in the git log.
 NOTES = """
-**Why `featurize_vs_floor` is missed.** The floor is one Gaussian filter, a few passes over a
+**`featurize_vs_floor` is a figure now** (issue 13); its goal became `features_vs_engine`,
+the end-to-end features over the floor plus ripser alone on the same sites with the same
+options: what the chain adds to the two parts it cannot do without (site finding, the
+triangulation, death edges, order measures, amounts, vectorising). Ripser's cocycles are
+computed only where a result uses them (birth edges of truncated bars); the saving is measured
+under "End-to-end features against the floor".
+
+**Why the floor alone is out of reach.** The floor is one Gaussian filter, a few passes over a
 megapixel. The chain has to find every site and compute the exact Vietoris–Rips H1 of all site
 pairs closer than the radius limit, and ripser alone on exactly that input takes several times
 the floor (measured in every run: "ripser's H1 alone" under "End-to-end features against the
@@ -328,21 +342,29 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
         union.transform([measure_pattern(path)])
 
     # The part no change of topoclass can remove: ripser's H1 alone, on the same sites and the
-    # same radius graph, with the representative cocycles that pattern_persistence asks for.
+    # same radius graph, with the options pattern_persistence uses (no cocycles: they are
+    # computed only for truncated bars of tied length, which this image has not); and, to
+    # measure what dropping them saves, with cocycles as before, and pattern_persistence
+    # keeping every birth edge ("all") against the default ("cut").
     pattern = find_sites(read_micrograph(path).image)
     pts = pattern.xy / pattern.spacing
     pairs, dist = _radius_graph(pts, MAX_SCALE, cKDTree(pts))
     graph = coo_matrix((dist, (pairs[:, 0], pairs[:, 1])), shape=(len(pts), len(pts)))
 
-    def bare_ripser():
-        ripser(graph, distance_matrix=True, maxdim=1, thresh=MAX_SCALE, do_cocycles=True)
+    def bare_ripser(cocycles: bool = False):
+        ripser(graph, distance_matrix=True, maxdim=1, thresh=MAX_SCALE, do_cocycles=cocycles)
 
-    floor_t, full_t, ripser_t = [], [], []
+    floor_t, full_t, ripser_t, ripser_co_t, cut_t, all_t = [], [], [], [], [], []
     with threadpool_limits(1):
         for _ in range(repeats):
             floor_t.append(_wall(floor))
             full_t.append(_wall(full))
             ripser_t.append(_wall(bare_ripser))
+            ripser_co_t.append(_wall(lambda: bare_ripser(True)))
+            cut_t.append(_wall(lambda: pattern_persistence(pattern, max_scale=MAX_SCALE)))
+            all_t.append(_wall(lambda: pattern_persistence(pattern, max_scale=MAX_SCALE,
+                                                           birth_edges="all")))
+    truncated = int(np.count_nonzero(record.diagrams.h1_truncated))
     # Where the end-to-end time goes (one more run, CPU seconds per stage).
     micro = read_micrograph(path)
     stages, _ = chain(micro.image, union, source=str(path))
@@ -353,8 +375,13 @@ def measure_featurize(workdir: Path, *, repeats: int = 7, seed: int = 3) -> dict
         "ratio": min(full_t) / min(floor_t),
         "ripser_s": min(ripser_t), "ripser_edges": int(pairs.shape[0]),
         "ripser_vs_floor": min(ripser_t) / min(floor_t),
-        # What the chain costs beyond the two parts it cannot do without (not a goal).
+        # What the chain costs beyond the two parts it cannot do without (a goal since issue 13).
         "features_vs_floor_plus_ripser": min(full_t) / (min(floor_t) + min(ripser_t)),
+        "ripser_cocycles_s": min(ripser_co_t),
+        "persistence_cut_s": min(cut_t), "persistence_all_s": min(all_t),
+        "cocycle_saving_s": min(all_t) - min(cut_t),
+        "cocycle_saving_of_features": (min(all_t) - min(cut_t)) / min(full_t),
+        "h1_truncated": truncated,
         "stages_cpu_s": {k: v for k, v in stages.items() if k.endswith("_s")},
     }
 
@@ -501,36 +528,55 @@ def run_all(mode: str, *, log: Callable[[str], None]) -> dict:
 
             batch_report = timed("report", lambda: measure_report(
                 tmp / "report", rounds=cfg["jobs_rounds"], progress=log))
+            from bench_cluster import measure_cluster
+
+            cluster = timed("cluster", lambda: measure_cluster(
+                tmp / "cluster", n_images=cfg["cluster_images"], rounds=2,
+                progress=log))
             rips = timed("rips", lambda: measure_rips(cfg["rips_sites"],
                                                       repeats=cfg["rips_limited_repeats"]))
+            from bench_labeling import measure_labeling
+
+            labeling = timed("labeling", lambda: measure_labeling(mode, jobs=2, log=log))
 
     values = {
         "rips_speedup_3k": rips["speedup"],
         "diagrams_identical": rips["identical"],
         "scaling_slope": scaling["slope"],
         "peak_rss_100k_mb": rss["peak_rss_mb"],
+        "features_vs_engine": featurize["features_vs_floor_plus_ripser"],
+        "jobs2_vs_capacity": (jobs["speedup_warm"] or jobs["speedup_cold"])
+        / jobs["parallel_capacity"],
+        "cluster2_vs_jobs2": cluster["cluster2_vs_jobs2"],
         "featurize_vs_floor": featurize["ratio"],
         "jobs2_speedup": jobs["speedup_warm"] if jobs["speedup_warm"] else jobs["speedup_cold"],
         "site_finding_2048_s": sites["best_s"],
         "report_vs_score": batch_report["report_vs_score"],
         "detail_kb_per_image": batch_report["detail_kb_per_image"],
+        "active_label_saving": labeling["active_label_saving"],
     }
     for key, value in values.items():
         op, goal = GOALS[key]
+        if op == "figure":
+            results[key] = {"value": value, "goal": "reported", "pass": None}
+            continue
         results[key] = {"value": value, "goal": f"{op} {goal}", "pass": _passes(value, op, goal)}
     results["jobs2_speedup_cold_pool"] = jobs["speedup_cold"]
     results["parallel_capacity"] = jobs["parallel_capacity"]
     results["accuracy"] = {"goal": "reported, no threshold", "rows": accuracy["rows"]}
     results["details"] = {"rips": rips, "scaling": scaling, "peak_rss": rss,
                           "featurize": featurize, "jobs": jobs, "site_finding": sites,
+                          "cluster": cluster,
                           "report": batch_report,
+                          "labeling": {k: v for k, v in labeling.items() if k != "runs"},
                           "accuracy": {k: v for k, v in accuracy.items() if k != "rows"}}
     results["sizes"] = _sizes_text(cfg)
     results["seconds"] = seconds
     results["total_s"] = time.perf_counter() - started
     results["load_end"] = os.getloadavg()
-    results["all_pass"] = all(results[k]["pass"] for k in GOALS)
+    results["all_pass"] = all(results[k]["pass"] for k in GOALS if GOALS[k][0] != "figure")
     results["_accuracy_full"] = accuracy
+    results["_labeling_full"] = labeling
     return results
 
 
@@ -583,6 +629,16 @@ def table_text(results: dict) -> str:
         "featurize_vs_floor": f"{d['featurize']['features_s']:.3f} s / "
                               f"{d['featurize']['floor_s']:.3f} s, {d['featurize']['n_sites']} "
                               f"sites; ripser alone {d['featurize']['ripser_vs_floor']:.1f}x",
+        "features_vs_engine": f"{d['featurize']['features_s']:.3f} s / ("
+                              f"{d['featurize']['floor_s']:.3f} s floor + "
+                              f"{d['featurize']['ripser_s']:.3f} s ripser alone); cocycles "
+                              f"only where used save "
+                              f"{d['featurize']['cocycle_saving_s'] * 1e3:.0f} ms",
+        "jobs2_vs_capacity": f"speed-up {results['jobs2_speedup']['value']:.2f} / free cores "
+                             f"{d['jobs']['parallel_capacity']:.2f}",
+        "cluster2_vs_jobs2": f"{d['cluster']['n_images']} images, warm: jobs=2 "
+                             f"{d['cluster']['best_s']['jobs2']:.1f} s / local:2 "
+                             f"{d['cluster']['best_s']['cluster2']:.1f} s (bench_cluster.py)",
         "jobs2_speedup": f"{d['jobs']['n_images']} images, warm pool; cold pool "
                          f"{d['jobs']['speedup_cold']:.2f}; free cores "
                          f"{d['jobs']['parallel_capacity']:.2f}",
@@ -593,14 +649,15 @@ def table_text(results: dict) -> str:
                            f"{min(d['report']['score_s']):.2f} s (bench_report.py)",
         "detail_kb_per_image": f"{d['report']['detail_views']} detail views, "
                                f"{d['report']['detail_bytes'] / 1e6:.2f} MB",
+        "active_label_saving": _labeling_text(d["labeling"]),
     }
     lines = ["| metric | value | goal | pass | measured on |", "| --- | --- | --- | --- | --- |"]
     for key in GOALS:
         r = results[key]
         v = r["value"]
         value = ("yes" if v else "NO") if isinstance(v, bool) else f"{v:.3g}"
-        lines.append(f"| `{key}` | {value} | {r['goal']} | {'pass' if r['pass'] else 'FAIL'} "
-                     f"| {how[key]} |")
+        verdict = "figure" if r["pass"] is None else ("pass" if r["pass"] else "FAIL")
+        lines.append(f"| `{key}` | {value} | {r['goal']} | {verdict} | {how[key]} |")
     return "\n".join(lines)
 
 
@@ -643,6 +700,12 @@ def details_text(results: dict) -> str:
             f"{MAX_SCALE} spacings, with cocycles): {f['ripser_s'] * 1e3:.1f} ms, "
             f"**{f['ripser_vs_floor']:.2f}x the floor** by itself; features / (floor + ripser "
             f"alone) = {f['features_vs_floor_plus_ripser']:.2f}",
+            f"- cocycles only where a result uses them: ripser with cocycles "
+            f"{f['ripser_cocycles_s'] * 1e3:.1f} ms, without {f['ripser_s'] * 1e3:.1f} ms; "
+            f"pattern_persistence keeping every birth edge {f['persistence_all_s'] * 1e3:.1f} ms,"
+            f" only the truncated bars' (default) {f['persistence_cut_s'] * 1e3:.1f} ms: saves "
+            f"{f['cocycle_saving_s'] * 1e3:.1f} ms, {f['cocycle_saving_of_features']:.1%} of the "
+            f"features ({f['h1_truncated']} truncated H1 bars on this image)",
             "- CPU by stage (one extra run, without the read): "
             + ", ".join(f"{k[:-2]} {v * 1e3:.1f} ms" for k, v in st.items()), ""]
     j = d["jobs"]
@@ -660,6 +723,16 @@ def details_text(results: dict) -> str:
             f"{j['parallel_capacity']:.2f}",
             "- scores.csv identical for jobs=1 and jobs=2: "
             + ("yes" if j["identical_csv"] else f"NO (first difference: {j['first_difference']})"),
+            ""]
+    c = d["cluster"]
+    out += ["### Batch scoring on a local Dask cluster (bench_cluster.py)", "",
+            f"- {c['n_images']} invented images of {c['size']}² px, warm, best of "
+            f"{c['rounds']} rounds: jobs=1 {c['best_s']['jobs1']:.1f} s, jobs=2 "
+            f"{c['best_s']['jobs2']:.1f} s, local:2 (two one-thread workers) "
+            f"{c['best_s']['cluster2']:.1f} s; free cores {c['parallel_capacity']:.2f} before, "
+            f"{c['parallel_capacity_after']:.2f} after; load average "
+            f"{c['load_before'][0]:.2f} before, {c['load_after'][0]:.2f} after",
+            "- scores.csv identical for the three: " + ("yes" if c["identical_csv"] else "NO"),
             ""]
     r = d["rips"]
     out += ["### Radius-limited against dense Rips", "",
@@ -741,6 +814,7 @@ def main(argv=None) -> int:
     log(f"mode {mode}: {_sizes_text(MODES[mode])}")
     results = run_all(mode, log=log)
     accuracy = results.pop("_accuracy_full")
+    labeling = results.pop("_labeling_full")
     if args.json:
         print(json.dumps(results, default=_json_default, indent=1))
     else:
@@ -757,7 +831,12 @@ def main(argv=None) -> int:
         RESULTS.write_text(results_markdown(results), encoding="utf-8")
         ACCURACY.write_text(accuracy_markdown(accuracy), encoding="utf-8")
         _update_readme(results)
-        log(f"wrote {RESULTS}, {ACCURACY} and the accuracy block of {README}")
+        import bench_labeling
+
+        bench_labeling.write_figure(labeling)
+        bench_labeling.OUT.write_text(bench_labeling.markdown(labeling), encoding="utf-8")
+        log(f"wrote {RESULTS}, {ACCURACY}, {bench_labeling.OUT.name} and the accuracy block "
+            f"of {README}")
     if args.mapping:
         import bench_mapping
 
@@ -779,6 +858,14 @@ def _sizes_text(cfg: dict) -> str:
             f"{cfg['jobs_size']}² x {cfg['jobs_rounds']} round(s); site finding 2048² best of "
             f"{cfg['sites_repeats']}; accuracy per_class={a['per_class']}, size={a['size']}, "
             f"seed={a['seed']}, cv={a['cv']}")
+
+
+def _labeling_text(d: dict) -> str:
+    m, (lo, hi) = d["mean_needed"], d["saving_ci95"]
+    c = d["config"]
+    return (f"labels to held-out macro-F1 {c['target']}: suggested {m['suggested']:.1f}, random "
+            f"{m['random']:.1f} ({c['seeds']} seeds; saving 95 % interval {lo:.2f} to {hi:.2f}, "
+            f"ceiling {d['ceiling']:.2f}; bench_labeling.py, labeling.md)")
 
 
 def _update_readme(results: dict) -> None:

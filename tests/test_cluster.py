@@ -99,6 +99,8 @@ def test_unreadable_path_is_an_error_row_naming_path_and_worker(engine, small_mo
     assert str(missing) in message and "cannot read the file" in message
     workers = set(engine.client.scheduler_info()["workers"])
     assert any(f"on cluster worker {w}" in message for w in workers), message
+    assert all(w.startswith("tcp://127.0.0.1:") for w in workers)  # local:N stays local
+    assert "127.0.0.1, 2 worker(s)" in engine.describe()
 
 
 def test_killed_worker_leaves_exactly_forty_rows(engine, small_model, forty, tmp_path):

@@ -435,7 +435,7 @@ def _make_bad(kind: str, tmp_path):
     if kind == "bomb":
         path = tmp_path / "bomb.png"
         _png_header_only(path, 60_000, 60_000)  # 3.6e9 pixels; Pillow itself would refuse
-        return path, "max_pixels"
+        return path, "--max-pixels"
     raise AssertionError(kind)
 
 

@@ -181,6 +181,32 @@ def test_ranking_is_repeatable_and_the_ambiguous_image_comes_first(labelled_reco
     assert "hesitates" in first[0].reason
 
 
+def test_pool_rows_are_kept_and_only_new_images_transformed(labelled_records, pool_records):
+    from topoclass.labeling import PoolFeatures
+
+    records, _ = labelled_records
+    pool, _ = pool_records
+    table = PoolFeatures()
+    first = table.rows(range(len(records)), records)
+    # The same as scikit-learn's own fit-transform of the same steps on the same images.
+    from topoclass.labeling.ranking import quick_model
+
+    expected = np.clip(quick_model()[:-1].fit_transform(records), -5, 5)
+    np.testing.assert_allclose(first, expected)
+    seen = []
+    transform = table._transform.transform
+    table._transform.transform = lambda batch: seen.append(len(batch)) or transform(batch)
+    keys, both = list(range(len(records) + 2)), records + pool[:2]
+    grown = table.rows(keys, both)
+    assert seen == [2]  # the two new images only; fewer than twice as many: no refit
+    np.testing.assert_array_equal(grown[:len(records)], first)
+    np.testing.assert_allclose(table.transform(pool[:2]), grown[len(records):])
+    seen.clear()
+    doubled = list(range(2 * len(records)))
+    table.rows(doubled, (records * 2)[:len(doubled)])  # twice the images: fitted again
+    assert seen == [] and len(table) == len(doubled)  # by a new transform, not the old one
+
+
 def test_before_three_labels_per_class_the_order_spreads_over_the_set(labelled_records,
                                                                       pool_records):
     records, y = labelled_records
@@ -236,7 +262,7 @@ def pool_files(small_dataset, tmp_path_factory):
     in the training set's truth files), as more images of known samples do on a real line.
     """
     from topoclass.synth import KINDS, make_micrograph
-    from topoclass.synth import _write_png8 as write_png
+    from topoclass.synth import write_grey_png as write_png
 
     truth = small_dataset.parent / "truth"
     samples = {k: json.loads((truth / f"{k}_000.json").read_text())["sample"] for k in KINDS}

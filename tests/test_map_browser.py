@@ -16,7 +16,7 @@ from _browser import chromium_driver, severe_messages
 
 from topoclass.mapping import plan_tiles, tile_columns
 from topoclass.report.map_view import write_map_views
-from topoclass.scoring import _format_row
+from topoclass.rowfile import csv_header, csv_line
 
 CLASSES = ["disordered", "ordered"]
 
@@ -29,14 +29,14 @@ def map_page(tmp_path_factory):
     tifffile.imwrite(image, pixels, tile=(128, 128))
     plan = plan_tiles((600, 900), 256, 30)
     columns = tile_columns(CLASSES)
-    lines = [_format_row(dict(zip(columns, columns, strict=True)), columns)]
+    lines = [csv_header(columns)]
     for i, (box, core) in enumerate(zip(plan.boxes, plan.cores, strict=True)):
         verdict = CLASSES[i % 2] if i != 1 else "unfamiliar"
         row = dict(zip(("x0", "y0", "x1", "y1"), box.tolist(), strict=True))
         row.update(zip(("core_x0", "core_y0", "core_x1", "core_y1"), core.tolist(), strict=True))
         row.update(status="ok", verdict=verdict, predicted=CLASSES[i % 2], confidence=0.9,
                    n_sites=300 + i)
-        lines.append(_format_row(row, columns))
+        lines.append(csv_line(row, columns))
     (out / "tiles.csv").write_text("".join(lines), encoding="utf-8")
     header = {"image": str(image), "shape": [600, 900], "tile_px": plan.tile,
               "overlap_px": plan.overlap, "spacing_px": 12.0, "pixel_size_nm": 8.0,

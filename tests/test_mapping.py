@@ -147,15 +147,20 @@ def test_totals_count_cores_once():
 
 
 @pytest.fixture(scope="module")
-def pasted_mosaic(tmp_path_factory):
+def pasted_mosaic(tmp_path_factory, small_dataset):
     """Four invented micrographs of known class pasted 2 x 2, as a tiled 16-bit TIFF."""
-    from topoclass.synth import draw_sample, make_micrograph
+    from topoclass.synth import draw_sample, grains_per_spacing2, make_micrograph
 
+    # The grains quarter holds grains of the training images' size (in spacings): with the
+    # few grains of one training image spread over a quarter, a tile can sit inside one grain.
+    n_grains = round(grains_per_spacing2(small_dataset.parent) * (QUARTER / SPACING) ** 2)
     quarters = []
     for k, kind in enumerate(KINDS):
         sample = draw_sample(kind, seed=100 + k)
         sample["spacing_range_px"] = [SPACING, SPACING]
-        quarters.append(make_micrograph(kind, size=QUARTER, seed=200 + k, sample=sample)[0])
+        amounts = {"n_grains": n_grains} if kind == "grains" else None
+        quarters.append(make_micrograph(kind, size=QUARTER, seed=200 + k, sample=sample,
+                                        amounts=amounts)[0])
     mosaic = np.block([[quarters[0], quarters[1]], [quarters[2], quarters[3]]])
     path = tmp_path_factory.mktemp("mosaic") / "mosaic.tif"
     tifffile.imwrite(path, (mosaic * 65535).astype(np.uint16), tile=(128, 128),
@@ -243,3 +248,66 @@ def test_the_100_megapixel_guard_still_protects_score(tmp_path, small_model):
     assert summary.failed == 1
     row = read_scores(tmp_path / "s.csv")[0]
     assert row["status"] == "error" and "100,000,000" in row["message"]
+
+
+# ------------------------------------------------------------------ the analysed region
+
+
+@pytest.mark.parametrize("edge", ["bottom", "top"])
+@pytest.mark.parametrize("rows", [700, 2600])
+def test_large_image_region_matches_the_whole_image_stage(tmp_path, edge, rows):
+    # Reference: topoclass.region.analysed_region on the whole image read at once (tested on
+    # its own against pasted data bars); read in edge strips (2600 rows: two strips of 1024
+    # with rows between them unread) the large image must give the same box and bar.
+    from topoclass.mapping import large_image_region
+    from topoclass.region import analysed_region
+    from topoclass.synth import add_data_bar, make_micrograph
+
+    field = make_micrograph("ordered", size=400, seed=5)[0]
+    field = np.tile(field, (-(-rows // 400), 1))[:rows]
+    pixels, boundary = add_data_bar(field, height=60, edge=edge, seed=2)
+    path = tmp_path / "bar.tif"
+    tifffile.imwrite(path, (pixels * 65535).astype(np.uint16), tile=(128, 128))
+    whole = analysed_region(read_micrograph(path).image)
+    with open_large_image(path) as big:
+        found = large_image_region(big)
+        assert found.box == whole.box and found.data_bar == whole.data_bar
+        assert found.data_bar.edge == edge and found.data_bar.boundary == boundary
+        # The user's region (fractions of the frame) is searched for a bar inside it.
+        half = large_image_region(big, (0.0, 0.0, 0.5, 1.0))
+        assert half.box[::2] == (0, 200) and half.data_bar is not None
+        assert large_image_region(big, auto=False).box == (0, 0, 400, rows + 60)
+
+
+def test_map_leaves_the_data_bar_out_of_every_tile(tmp_path, small_model):
+    from PIL import Image
+
+    from topoclass.mapping import read_map_header
+    from topoclass.model import load_model
+    from topoclass.report.map_view import write_map_views
+    from topoclass.synth import add_data_bar, draw_sample, make_micrograph
+
+    sample = draw_sample("ordered", seed=100)
+    sample["spacing_range_px"] = [SPACING, SPACING]
+    field = make_micrograph("ordered", size=QUARTER, seed=200, sample=sample)[0]
+    pixels, boundary = add_data_bar(field, edge="bottom", seed=4)
+    path = tmp_path / "with-bar.tif"
+    tifffile.imwrite(path, (pixels * 65535).astype(np.uint16), tile=(128, 128))
+    out = tmp_path / "map"
+    summary = map_image(load_model(small_model.directory), path, out)
+    bar = summary.region.data_bar
+    assert bar is not None and bar.edge == "bottom" and bar.boundary == boundary
+    rows = read_tiles(out / "tiles.csv")
+    assert rows and max(int(r["y1"]) for r in rows) < boundary
+    assert all(r["status"] == "ok" and r["predicted"] == "ordered" for r in rows)
+    # The cores cover the analysed region exactly once (elementary geometry).
+    x0, y0, x1, y1 = summary.region.box
+    assert sum((int(r["core_x1"]) - int(r["core_x0"])) * (int(r["core_y1"]) - int(r["core_y0"]))
+               for r in rows) == (x1 - x0) * (y1 - y0)
+    assert read_map_header(out)["data_bar"]["boundary"] == boundary
+    assert any("data bar along the bottom edge" in n for n in summary.notes)
+    png, page = write_map_views(out)
+    text = page.read_text(encoding="utf-8")
+    assert "class='left-out bar'" in text and f"y='{boundary}'" in text
+    with Image.open(png) as im:
+        assert im.size[0] > 1000

@@ -168,12 +168,12 @@ def test_rimmed_pores_count_once():
 @pytest.fixture(scope="module")
 def exported_file(tmp_path_factory):
     """An invented micrograph exported with a data bar, as an 8-bit PNG."""
-    from topoclass.synth import _write_png8
+    from topoclass.synth import write_grey_png
 
     micrograph, _ = make_micrograph("vacancies", size=256, seed=21)
     exported, boundary = add_data_bar(micrograph, polarity="dark", seed=22)
     path = tmp_path_factory.mktemp("export") / "line_A_0001.png"
-    _write_png8(path, exported)
+    write_grey_png(path, exported)
     return path, boundary
 
 

@@ -299,3 +299,18 @@ def test_amounts_replace_the_drawn_disorder():
     _, truth = make_micrograph("grains", size=192, seed=3,
                                amounts={"n_grains": 2, "angles_deg": [10.0, 14.0]})
     assert truth["angles_deg"] == [10.0, 14.0] and truth["min_misorientation_deg"] == 4.0
+
+
+@pytest.mark.parametrize("angle", [0.0, 17.0, 37.0, 53.0])
+def test_a_large_turned_lattice_covers_the_whole_frame(angle):
+    # Elementary geometry: every point of a plane covered by a triangular lattice of spacing a
+    # lies within a / sqrt(3) (the circumradius of its triangles) of a site; a frame of
+    # 2400 px once had an empty corner at some angles.
+    from topoclass.synth import hexagonal_lattice
+
+    spacing = 13.0
+    xy = hexagonal_lattice((2400, 2400), spacing, angle=angle, margin=-spacing)
+    grid = np.stack(np.meshgrid(np.arange(0, 2400, 10.0), np.arange(0, 2400, 10.0)),
+                    axis=-1).reshape(-1, 2)
+    gap = cKDTree(xy).query(grid)[0].max()
+    assert gap <= spacing / np.sqrt(3.0) + 1e-6

@@ -24,6 +24,8 @@ ROOT = Path(__file__).resolve().parents[1]
 
 JOB = r"""
 import sys
+import matplotlib
+matplotlib.rcParams["svg.hashsalt"] = "same-outputs"
 from pathlib import Path
 out = Path(sys.argv[1]); data = Path(sys.argv[2])
 from topoclass.workflow import train_from_labels
@@ -39,7 +41,9 @@ write_batch_report(out / "run" / "scores.csv", model=model)
 
 
 def run_job(tree: Path, out: Path) -> None:
-    env = {**os.environ, "PYTHONPATH": str(tree), "MPLBACKEND": "Agg"}
+    # SVG files carry a date and random ids; fix both so that equal figures give equal files.
+    env = {**os.environ, "PYTHONPATH": str(tree), "MPLBACKEND": "Agg",
+           "SOURCE_DATE_EPOCH": "0"}
     subprocess.run([sys.executable, "-c", JOB, str(out), str(ROOT / "data_demo")], env=env,
                    check=True, cwd=tree)
 

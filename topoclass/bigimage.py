@@ -33,18 +33,19 @@ import numpy as np
 
 from topoclass.errors import ImageReadError, TopoclassError
 from topoclass.images import (
-    _TIFF_MAGIC,
-    MIN_SIDE,
     Micrograph,
-    _check_extent,
-    _check_file,
-    _check_samples,
-    _damaged,
-    _decoder_state,
-    _invert,
-    _tiff_pixel_size_or_none,
-    _to_unit_grey,
+    check_channels,
+    check_image_file,
+    check_min_side,
+    check_single_plane,
+    check_tiff_extent,
+    damaged_file_error,
+    decoder_guard,
+    invert_grey,
+    is_tiff,
     read_micrograph,
+    tiff_pixel_size_nm,
+    to_unit_grey,
 )
 
 #: Default limit on the memory a whole-file read may take (PNG, JPEG, TIFF not readable in
@@ -52,7 +53,7 @@ from topoclass.images import (
 DEFAULT_MEMORY_LIMIT_MB = 1500
 
 # Bytes per pixel a whole read takes at its peak: the decoded pixels (up to 4 bytes of RGBA),
-# the float64 scaling copy and the float32 result (topoclass.images._to_unit_grey).
+# the float64 scaling copy and the float32 result (topoclass.images.to_unit_grey).
 _WHOLE_READ_BYTES_PER_PIXEL = 4 + 8 + 4
 
 
@@ -109,7 +110,7 @@ class LargeImage:
                     "nothing to measure there"
                 )
         else:
-            image = _to_unit_grey(raw, self.path, self._info, notes)
+            image = to_unit_grey(raw, self.path, self._info, notes)
         return Micrograph(image=image, pixel_size_nm=self.pixel_size_nm,
                           source=f"{self.path} [tile {x0},{y0},{x1},{y1}]",
                           dtype=self.dtype, notes=tuple(notes))
@@ -153,7 +154,7 @@ class LargeImage:
             raw = self._decoded(x0, y0, x1, y1)
         raw = raw[..., 0] if raw.shape[-1] == 1 else raw
         if self._info.get("photometric") == 0:  # white is zero: bright stays bright
-            raw = _invert(raw, self._info.get("bits", 0))
+            raw = invert_grey(raw, self._info.get("bits", 0))
         return raw
 
     def _decoded(self, x0: int, y0: int, x1: int, y1: int) -> np.ndarray:
@@ -187,7 +188,7 @@ class LargeImage:
                     _paste(out, block, top - y0, left - x0)
         except (ValueError, NotImplementedError, OSError, RuntimeError) as exc:
             # tifffile raises these (and its TiffFileError, a ValueError) for damaged bytes
-            raise _damaged(self.path, exc) from None
+            raise damaged_file_error(self.path, exc) from None
         return out
 
 
@@ -219,12 +220,10 @@ def open_large_image(path: str | Path, *,
         to read whole); one line naming the file and what to do.
     """
     path = Path(path)
-    _check_file(path)
+    check_image_file(path)
     if memory_limit_mb <= 0:
         raise TopoclassError(f"memory limit must be positive, not {memory_limit_mb}")
-    with path.open("rb") as fh:
-        head = fh.read(4)
-    if head in _TIFF_MAGIC:
+    if is_tiff(path):
         piecewise = _open_tiff(path)
         if piecewise is not None:
             return piecewise
@@ -234,12 +233,11 @@ def open_large_image(path: str | Path, *,
 def image_size(path: str | Path) -> tuple[int, int]:
     """``(rows, cols)`` of a micrograph file from its header, without decoding the pixels."""
     path = Path(path)
-    _check_file(path)
-    with path.open("rb") as fh:
-        head = fh.read(4)
-    with _decoder_state():
+    check_image_file(path)
+    tiff = is_tiff(path)
+    with decoder_guard():
         try:
-            if head in _TIFF_MAGIC:
+            if tiff:
                 import tifffile
 
                 with tifffile.TiffFile(path) as tif:
@@ -250,7 +248,7 @@ def image_size(path: str | Path) -> tuple[int, int]:
             with Image.open(path) as im:
                 return int(im.size[1]), int(im.size[0])
         except Exception as exc:  # noqa: BLE001 - any parser failure on untrusted bytes
-            raise _damaged(path, exc) from None
+            raise damaged_file_error(path, exc) from None
 
 
 # --------------------------------------------------------------------------------------------
@@ -262,27 +260,19 @@ def _open_tiff(path: Path) -> LargeImage | None:
     import tifffile
 
     notes: list[str] = []
-    with _decoder_state() as log:
+    with decoder_guard() as log:
         try:
             with tifffile.TiffFile(path) as tif:
                 page = tif.pages.first
                 n_pages = len(tif.pages)
                 s_separate, depth, rows, cols, s_contig = page.shaped
                 photometric = int(page.photometric)
-                if depth > 1:
-                    raise ImageReadError(
-                        f"{path}: holds a {depth}x{rows}x{cols} volume, not a 2-D image; "
-                        "save one slice as its own file"
-                    )
-                _check_samples(path, s_separate * s_contig, photometric, rows, cols,
+                check_single_plane(path, depth, rows, cols)
+                check_channels(path, s_separate * s_contig, photometric, rows, cols,
                                page.extrasamples)
-                if rows < MIN_SIDE or cols < MIN_SIDE:
-                    raise ImageReadError(
-                        f"{path}: only {cols}x{rows} pixels; at least {MIN_SIDE}x{MIN_SIDE} "
-                        "are needed to see a lattice, use a larger image"
-                    )
-                _check_extent(path, page, tif.filehandle.size)
-                pixel_size = _tiff_pixel_size_or_none(page, tif, notes, path)
+                check_min_side(path, rows, cols)
+                check_tiff_extent(path, page, tif.filehandle.size)
+                pixel_size = tiff_pixel_size_nm(page, tif, notes, path)
                 if n_pages > 1:
                     notes.append(f"{path}: has {n_pages} pages; only the first page is mapped")
                 if s_separate > 1 or photometric not in (0, 1, 2):
@@ -310,7 +300,7 @@ def _open_tiff(path: Path) -> LargeImage | None:
         except ImageReadError:
             raise
         except Exception as exc:  # noqa: BLE001 - any parser failure on untrusted bytes
-            raise _damaged(path, log[0] if log else exc) from None
+            raise damaged_file_error(path, log[0] if log else exc) from None
     for note in notes:
         warnings.warn(note, stacklevel=3)
     return LargeImage(path=path, shape=(int(rows), int(cols)), pixel_size_nm=pixel_size,

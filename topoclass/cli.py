@@ -257,7 +257,6 @@ def score(
     import dataclasses
 
     from topoclass.features import FeatureSettings
-    from topoclass.images import collect_image_paths
     from topoclass.model import load_model
     from topoclass.report import batch_report_paths, write_batch_report
     from topoclass.scoring import score_images, summary_text
@@ -268,23 +267,24 @@ def score(
         raise TopoclassError(f"{page}: the report page exists; pass --overwrite to replace it, "
                              "--resume to continue its batch, or give --out another name")
     trained = load_model(model_dir)
-    paths = collect_image_paths(inputs)
-    if not paths:
-        raise TopoclassError(f"no images found in {', '.join(map(str, inputs))}; give image "
-                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    paths = _image_paths(inputs)
     settings = FeatureSettings.from_model(trained)
     if max_pixels is not None:
         settings = dataclasses.replace(settings, max_pixels=max_pixels)
     settings = dataclasses.replace(settings, **_region_options(region, no_auto_region))
-    recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
-                                              len(paths), note, alpha)
+    # The cluster first: a scheduler that cannot be reached must not leave a started batch
+    # in the store; the store is closed however scoring ends.
     with _cluster_engine(cluster, jobs) as engine:
-        summary = score_images(trained, paths, out, settings=settings, jobs=jobs,
-                               resume=resume, overwrite=overwrite, cache_dir=cache,
-                               progress=True, recorder=recorder, alpha=alpha,
-                               engine=engine)
-    if recorder is not None:
-        recorder.store.close()
+        recorder, store_problem = _batch_recorder(store, model_dir, trained, settings, out,
+                                                  len(paths), note, alpha)
+        try:
+            summary = score_images(trained, paths, out, settings=settings, jobs=jobs,
+                                   resume=resume, overwrite=overwrite, cache_dir=cache,
+                                   progress=True, recorder=recorder, alpha=alpha,
+                                   engine=engine)
+        finally:
+            if recorder is not None:
+                recorder.store.close()
     typer.echo(summary_text(summary))
     if not no_report:
         page = write_batch_report(out, model=trained, details=details, jobs=jobs,
@@ -414,13 +414,9 @@ def label(
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
 ) -> None:
     """Label images on a local web page; each label is written to the sheet at once."""
-    from topoclass.images import collect_image_paths
     from topoclass.labeling.server import serve_labelling
 
-    paths = collect_image_paths(images)
-    if not paths:
-        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
-                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    paths = _image_paths(images)
     names = [c.strip() for c in (classes or "").split(",") if c.strip()]
     serve_labelling(paths, sheet, classes=names, port=port, cache_dir=cache, jobs=jobs,
                     seed=seed, announce=lambda text: typer.echo(text))
@@ -439,13 +435,9 @@ def suggest(
     cache: Path | None = typer.Option(None, "--cache", help="Feature cache folder."),
 ) -> None:
     """Print the images worth labelling next, best first (one path per line)."""
-    from topoclass.images import collect_image_paths
     from topoclass.labeling.ranking import suggest_from_sheet, suggestion_json
 
-    paths = collect_image_paths(images)
-    if not paths:
-        raise TopoclassError(f"no images found in {', '.join(map(str, images))}; give image "
-                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    paths = _image_paths(images)
     ranked, failures = suggest_from_sheet(paths, sheet, count=count, seed=seed, jobs=jobs,
                                           cache_dir=cache, progress=True)
     _echo_failures(failures)
@@ -660,6 +652,17 @@ def _human_summary(summary: dict) -> str:
     for path in summary.get("outputs", []):
         lines.append(f"  wrote            {path}")
     return "\n".join(lines)
+
+
+def _image_paths(inputs: list[Path]) -> list[Path]:
+    """The images the arguments name; none at all is a usage error."""
+    from topoclass.images import collect_image_paths
+
+    paths = collect_image_paths(inputs)
+    if not paths:
+        raise TopoclassError(f"no images found in {', '.join(map(str, inputs))}; give image "
+                             "files, folders holding .png/.jpg/.tif files, or a list file")
+    return paths
 
 
 @contextlib.contextmanager

@@ -97,7 +97,7 @@ class ClusterEngine:
             self._cluster = distributed.LocalCluster(
                 n_workers=self.spec.local_workers, threads_per_worker=1, processes=True,
                 host="127.0.0.1", dashboard_address=_dashboard_address(),
-                silence_logs=logging.ERROR,
+                silence_logs=logging.CRITICAL,  # shutdown chatter is not news
             )
             self.client = distributed.Client(self._cluster, set_as_default=False)
             return self
@@ -145,6 +145,9 @@ class ClusterEngine:
         workers = len(self.client.scheduler_info().get("workers", {})) if self.client else 0
         where = "local cluster on 127.0.0.1" if self._cluster is not None else self.spec.address
         board = f"; dashboard {self.dashboard}" if self.dashboard else ""
+        if not workers:
+            return (f"cluster: {where} has no workers yet; the images wait until one connects "
+                    f"(`dask worker {self.spec}`){board}")
         return f"cluster: {where}, {workers} worker(s), {self.n_threads()} thread(s){board}"
 
     # -- work ---------------------------------------------------------------------------------

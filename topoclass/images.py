@@ -34,7 +34,8 @@ IMAGE_EXTENSIONS: tuple[str, ...] = (".png", ".jpg", ".jpeg", ".tif", ".tiff")
 LIST_EXTENSIONS: tuple[str, ...] = (".txt", ".lst")
 MIN_SIDE = 32  # fewer pixels than this per side cannot hold a measurable lattice
 
-_TIFF_MAGIC = (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+")  # classic and BigTIFF
+#: The first four bytes of a TIFF: classic and BigTIFF, either byte order.
+TIFF_SIGNATURES = (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+")
 _PIL_FORMATS = ("PNG", "JPEG", "TIFF")  # never let PIL hand a file to e.g. Ghostscript
 # Screen and print defaults (72, 96, 300 dpi ...) are not a calibration; no nanopattern
 # micrograph has pixels this large, so such values are ignored rather than reported.
@@ -114,17 +115,15 @@ def read_micrograph(path: str | Path, *, max_pixels: int = 100_000_000) -> Micro
         For every file that cannot be used; the message is one line naming the file.
     """
     path = Path(path)
-    _check_file(path)
-    with path.open("rb") as fh:
-        head = fh.read(4)
+    check_image_file(path)
     notes: list[str] = []
-    if head in _TIFF_MAGIC:
+    if is_tiff(path):
         raw, info = _read_tiff(path, max_pixels, notes)
     else:
         raw, info = _read_pil(path, max_pixels, notes)
     if info["n_pages"] > 1:
         notes.append(f"{path}: has {info['n_pages']} pages; only the first page was used")
-    image = _to_unit_grey(raw, path, info, notes)
+    image = to_unit_grey(raw, path, info, notes)
     for note in notes:
         warnings.warn(note, ImageReadWarning, stacklevel=2)
     return Micrograph(
@@ -188,9 +187,12 @@ def collect_image_paths(inputs: Sequence[str | Path]) -> list[Path]:
 
 
 # --------------------------------------------------------------------------- file checks
+# The checks, decoding rules and scaling below are public because :mod:`topoclass.bigimage`
+# reads the same files in pieces and must judge and scale them exactly as a whole read does.
 
 
-def _check_file(path: Path) -> None:
+def check_image_file(path: Path) -> None:
+    """Raise :class:`ImageReadError` unless ``path`` is a readable, non-empty image file."""
     if not path.exists():
         raise ImageReadError(f"{path}: file not found; check the path")
     if path.is_dir():
@@ -219,12 +221,32 @@ def _check_file(path: Path) -> None:
         )
 
 
-def _check_header(path: Path, rows: int, cols: int, max_pixels: int) -> None:
+def is_tiff(path: Path) -> bool:
+    """Whether the file starts like a TIFF (by its bytes, not its name)."""
+    with path.open("rb") as fh:
+        return fh.read(4) in TIFF_SIGNATURES
+
+
+def check_min_side(path: Path, rows: int, cols: int) -> None:
+    """Raise :class:`ImageReadError` for an image too small to hold a lattice."""
     if rows < MIN_SIDE or cols < MIN_SIDE:
         raise ImageReadError(
             f"{path}: only {cols}x{rows} pixels; at least {MIN_SIDE}x{MIN_SIDE} are needed "
             "to see a lattice, use a larger image"
         )
+
+
+def check_single_plane(path: Path, depth: int, rows: int, cols: int) -> None:
+    """Raise :class:`ImageReadError` for a TIFF page that holds a volume, not one image."""
+    if depth > 1:
+        raise ImageReadError(
+            f"{path}: holds a {depth}x{rows}x{cols} volume, not a 2-D image; "
+            "save one slice as its own file"
+        )
+
+
+def _check_header(path: Path, rows: int, cols: int, max_pixels: int) -> None:
+    check_min_side(path, rows, cols)
     n = rows * cols
     if n > max_pixels:
         raise ImageReadError(
@@ -233,7 +255,8 @@ def _check_header(path: Path, rows: int, cols: int, max_pixels: int) -> None:
         )
 
 
-def _damaged(path: Path, exc: BaseException) -> ImageReadError:
+def damaged_file_error(path: Path, exc: BaseException) -> ImageReadError:
+    """The one-line error for a file a decoder failed on, with the decoder's reason."""
     reason = " ".join(str(exc).split())[:160] or type(exc).__name__
     return ImageReadError(
         f"{path}: damaged or truncated image ({reason}); export or copy the file again"
@@ -246,26 +269,22 @@ def _damaged(path: Path, exc: BaseException) -> ImageReadError:
 def _read_tiff(path: Path, max_pixels: int, notes: list[str]) -> tuple[np.ndarray, dict]:
     import tifffile
 
-    with _decoder_state() as log:
+    with decoder_guard() as log:
         try:
             with tifffile.TiffFile(path) as tif:
                 page = tif.pages.first
                 n_pages = len(tif.pages)
                 s_separate, depth, rows, cols, s_contig = page.shaped
                 samples = s_separate * s_contig
-                if depth > 1:
-                    raise ImageReadError(
-                        f"{path}: holds a {depth}x{rows}x{cols} volume, not a 2-D image; "
-                        "save one slice as its own file"
-                    )
+                check_single_plane(path, depth, rows, cols)
                 photometric = int(page.photometric)
-                _check_samples(path, samples, photometric, rows, cols, page.extrasamples)
+                check_channels(path, samples, photometric, rows, cols, page.extrasamples)
                 _check_header(path, rows, cols, max_pixels)
-                _check_extent(path, page, tif.filehandle.size)
+                check_tiff_extent(path, page, tif.filehandle.size)
                 info = {
                     "n_pages": n_pages,
                     "dtype": str(page.dtype),
-                    "pixel_size_nm": _tiff_pixel_size_or_none(page, tif, notes, path),
+                    "pixel_size_nm": tiff_pixel_size_nm(page, tif, notes, path),
                     "bits": int(page.bitspersample),
                 }
                 if photometric not in (0, 1, 2, 3):  # CMYK, YCbCr, CIELab ...: let PIL convert
@@ -283,7 +302,7 @@ def _read_tiff(path: Path, max_pixels: int, notes: list[str]) -> tuple[np.ndarra
             return _read_pil(path, max_pixels, notes, tiff_reason=str(why))
         except Exception as exc:  # noqa: BLE001 - any parser failure on untrusted bytes
             detail = log[0] if log else exc
-            raise _damaged(path, detail) from None
+            raise damaged_file_error(path, detail) from None
     data = np.asarray(data)
     if s_separate > 1:
         data = np.moveaxis(data, 0, -1)
@@ -294,11 +313,13 @@ def _read_tiff(path: Path, max_pixels: int, notes: list[str]) -> tuple[np.ndarra
         data = np.moveaxis(colormap[:, np.clip(data, 0, colormap.shape[1] - 1)], 0, -1)
         info["dtype"], info["bits"] = "uint16", 16
     elif photometric == 0:  # white is zero: invert so that bright stays bright
-        data = _invert(data, info["bits"])
+        data = invert_grey(data, info["bits"])
     return data, info
 
 
-def _check_samples(path, samples, photometric, rows, cols, extrasamples) -> None:
+def check_channels(path: Path, samples: int, photometric: int, rows: int, cols: int,
+                   extrasamples) -> None:
+    """Raise :class:`ImageReadError` unless the samples per pixel make a grey or colour image."""
     if samples == 1:
         return
     if photometric == 2 and samples in (3, 4):
@@ -313,7 +334,8 @@ def _check_samples(path, samples, photometric, rows, cols, extrasamples) -> None
     )
 
 
-def _check_extent(path: Path, page, file_size: int) -> None:
+def check_tiff_extent(path: Path, page, file_size: int) -> None:
+    """Raise :class:`ImageReadError` if the page's pixel data runs past the end of the file."""
     # tifffile would raise on a short read, but checking the strip table first gives a clear
     # message and never allocates for data that is not there.
     ends = [o + n for o, n in zip(page.dataoffsets, page.databytecounts, strict=False) if n]
@@ -324,7 +346,8 @@ def _check_extent(path: Path, page, file_size: int) -> None:
         )
 
 
-def _tiff_pixel_size_or_none(page, tif, notes: list[str], path: Path) -> float | None:
+def tiff_pixel_size_nm(page, tif, notes: list[str], path: Path) -> float | None:
+    """The pixel size in nm a TIFF page records, or None; a garbled tag adds a note."""
     # A garbled calibration must not cost the user the image: the pixel size is optional, but
     # the row says it was dropped, so a missing size in nm is never a silent surprise.
     try:
@@ -385,7 +408,8 @@ def _tiff_pixel_size(page, tif, notes: list[str], path: Path) -> float | None:
     return float(size)
 
 
-def _invert(data: np.ndarray, bits: int) -> np.ndarray:
+def invert_grey(data: np.ndarray, bits: int) -> np.ndarray:
+    """Turn white-is-zero data over, within its stored bit depth, so bright stays bright."""
     if data.dtype == bool:
         return ~data
     if np.issubdtype(data.dtype, np.unsignedinteger):
@@ -406,7 +430,7 @@ def _read_pil(
 ) -> tuple[np.ndarray, dict]:
     from PIL import Image, UnidentifiedImageError
 
-    with _decoder_state():
+    with decoder_guard():
         try:
             Image.init()
             im = Image.open(path, formats=[f for f in _PIL_FORMATS if f in Image.ID])
@@ -421,7 +445,7 @@ def _read_pil(
                 "else); export it again as PNG or TIFF"
             ) from None
         except Exception as exc:  # noqa: BLE001 - any parser failure on untrusted bytes
-            raise _damaged(path, exc) from None
+            raise damaged_file_error(path, exc) from None
         with im:
             cols, rows = im.size
             _check_header(path, rows, cols, max_pixels)
@@ -438,9 +462,9 @@ def _read_pil(
                         f"{path}: TIFF cannot be decoded here ({tiff_reason}); save it "
                         "uncompressed or with deflate (zip) compression"
                     ) from None
-                raise _damaged(path, exc) from None
+                raise damaged_file_error(path, exc) from None
     if data.shape[:2] != (rows, cols):
-        raise _damaged(path, ValueError("decoded size differs from the header"))
+        raise damaged_file_error(path, ValueError("decoded size differs from the header"))
     return data, {"n_pages": n_pages, "dtype": dtype, "pixel_size_nm": None, "bits": 0}
 
 
@@ -463,7 +487,12 @@ def _pil_to_array(im) -> tuple[np.ndarray, str]:
 # --------------------------------------------------------------------------- scaling
 
 
-def _to_unit_grey(raw: np.ndarray, path: Path, info: dict, notes: list[str]) -> np.ndarray:
+def to_unit_grey(raw: np.ndarray, path: Path, info: dict, notes: list[str]) -> np.ndarray:
+    """Decoded pixels as a float32 grey image in [0, 1], by the module's scaling rules.
+
+    ``info["bits"]`` is the stored bit depth (0 when unknown); notes on replaced pixels are
+    appended to ``notes``. A uniform or unsupported image raises :class:`ImageReadError`.
+    """
     from skimage.color import rgb2gray
 
     data = np.asarray(raw)
@@ -531,7 +560,7 @@ def _unsigned_top(dtype: np.dtype, bits: int) -> int:
 
 
 @contextmanager
-def _decoder_state() -> Iterator[list[str]]:
+def decoder_guard() -> Iterator[list[str]]:
     """Hold the decoders' global settings the way this module needs them.
 
     PIL's own decompression-bomb check is turned off (``max_pixels`` is checked here instead,

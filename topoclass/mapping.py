@@ -4,8 +4,14 @@ A use case beside :mod:`topoclass.scoring`. The image is read piece by piece
 (:mod:`topoclass.bigimage`) and cut into overlapping tiles; each tile is measured exactly as a
 whole micrograph is (:func:`topoclass.features.measure_micrograph`) and scored with the same
 probabilities, novelty checks, review band and rows as ``score`` (the scoring module's own
-row builder). So that a tile is seen at the scale the model learnt, its side holds as many
-sites as the median training image (recorded in the model card) unless the user gives it.
+row builder, :func:`topoclass.scoring.score_rows`). So that a tile is seen at the scale the
+model learnt, its side holds as many sites as the median training image (recorded in the model
+card) unless the user gives it.
+
+The analysed region is found once, on the whole image (:func:`large_image_region`: the
+model's ``region`` setting less an instrument data bar, searched in the top and bottom strips);
+tiles are measured with no region search of their own, since a tile edge is no instrument's
+frame.
 
 Geometry: the analysed region is cut into a grid of *cores* that cover it exactly once; each
 tile is its core widened by half the overlap on every side (shifted inwards at the frame, so
@@ -18,9 +24,7 @@ beside it, ``resume=True`` keeps the finished tiles of a killed run.
 
 from __future__ import annotations
 
-import csv
 import dataclasses
-import io
 import json
 import math
 import os
@@ -35,15 +39,17 @@ from topoclass._progress import progress_bar
 from topoclass.bigimage import DEFAULT_MEMORY_LIMIT_MB, LargeImage, open_large_image
 from topoclass.errors import PatternError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, measure_micrograph
-from topoclass.scoring import (
-    AMOUNT_COLUMNS,
-    CAUTION,
-    MEASURE_COLUMNS,
-    _chunks,
-    _format_row,
-    _OutputLock,
-    _score_rows,
+from topoclass.region import AnalysedRegion, DataBar, analysed_region
+from topoclass.rowfile import (
+    WriterLock,
+    csv_header,
+    csv_line,
+    in_chunks,
+    read_rows,
+    reopen_checked,
+    write_durably,
 )
+from topoclass.scoring import AMOUNT_COLUMNS, CAUTION, MEASURE_COLUMNS, score_rows
 from topoclass.sites import estimate_spacing
 
 TILES_FILE = "tiles.csv"
@@ -62,6 +68,9 @@ OTHER_VERDICTS = ("review", "unfamiliar", "not measured")
 
 _HEX_AREA = math.sqrt(3.0) / 2.0  # area per site of a triangular lattice, in spacings squared
 _SPACING_PROBE_PX = 1024  # side of each crop the spacing of a large image is estimated on
+# Rows of each edge strip searched for a data bar: instrument bars are tens to a few hundred
+# rows deep, and a strip of the whole width stays small (12,000 px wide: 49 MB as float32).
+_BAR_STRIP_ROWS = 1024
 
 
 @dataclass(frozen=True)
@@ -75,7 +84,8 @@ class TilePlan:
     boxes : ndarray of int, shape (n, 4)
         ``x0, y0, x1, y1`` (half-open pixels) of each tile, row by row.
     cores : ndarray of int, shape (n, 4)
-        The part of the image each tile stands for; the cores cover the image exactly once.
+        The part of the image each tile stands for; the cores cover the analysed region
+        exactly once.
     tile, overlap : int
         Tile side and overlap in pixels.
     """
@@ -98,6 +108,7 @@ class MapSummary:
     plan: TilePlan
     spacing_px: float
     pixel_size_nm: float | None
+    region: AnalysedRegion | None = None
     scored: int = 0
     failed: int = 0
     skipped: int = 0
@@ -105,7 +116,8 @@ class MapSummary:
     notes: list[str] = field(default_factory=list)
 
 
-def plan_tiles(shape: tuple[int, int], tile: int, overlap: int) -> TilePlan:
+def plan_tiles(shape: tuple[int, int], tile: int, overlap: int,
+               box: tuple[int, int, int, int] | None = None) -> TilePlan:
     """Cut an image into tiles of side ``tile`` whose neighbours share ``overlap`` pixels.
 
     Parameters
@@ -116,6 +128,8 @@ def plan_tiles(shape: tuple[int, int], tile: int, overlap: int) -> TilePlan:
         Tile side in pixels (smaller where the image itself is smaller).
     overlap : int
         Pixels shared by neighbouring tiles, ``0 <= overlap < tile``.
+    box : (x0, y0, x1, y1), optional
+        The analysed region (half-open pixels) the tiles cover; the whole image by default.
 
     Returns
     -------
@@ -125,13 +139,16 @@ def plan_tiles(shape: tuple[int, int], tile: int, overlap: int) -> TilePlan:
     tile, overlap = int(tile), int(overlap)
     if tile < 1 or not 0 <= overlap < tile:
         raise ValueError(f"need tile >= 1 and 0 <= overlap < tile, not {tile}, {overlap}")
-    ys, ycore = _axis(rows, tile, overlap)
-    xs, xcore = _axis(cols, tile, overlap)
+    x0, y0, x1, y1 = (0, 0, cols, rows) if box is None else (int(v) for v in box)
+    if not (0 <= x0 < x1 <= cols and 0 <= y0 < y1 <= rows):
+        raise ValueError(f"box {box} is not inside the image of {cols}x{rows} pixels")
+    ys, ycore = _axis(y1 - y0, tile, overlap)
+    xs, xcore = _axis(x1 - x0, tile, overlap)
     boxes, cores = [], []
     for (b0, b1), (c0, c1) in zip(ys, ycore, strict=True):
         for (a0, a1), (d0, d1) in zip(xs, xcore, strict=True):
-            boxes.append((a0, b0, a1, b1))
-            cores.append((d0, c0, d1, c1))
+            boxes.append((x0 + a0, y0 + b0, x0 + a1, y0 + b1))
+            cores.append((x0 + d0, y0 + c0, x0 + d1, y0 + c1))
     return TilePlan(shape=(rows, cols), boxes=np.array(boxes, dtype=np.int64).reshape(-1, 4),
                     cores=np.array(cores, dtype=np.int64).reshape(-1, 4), tile=tile,
                     overlap=overlap)
@@ -159,27 +176,78 @@ def tile_side(model, spacing_px: float) -> tuple[int, str]:
     return max(32, int(round(spacing_px * math.sqrt(float(n) * _HEX_AREA)))), note
 
 
-def map_spacing(image: LargeImage) -> float:
+def large_image_region(image: LargeImage, box=None, *, auto: bool = True) -> AnalysedRegion:
+    """The analysed region of a large image: the user's box less an instrument data bar.
+
+    As :func:`topoclass.region.analysed_region` on the whole image, but reading only the top
+    and bottom strips of the box (at most 1024 rows each, the whole box when it is at most
+    twice that): a data bar lies along an edge, so nothing else needs reading. The strips are
+    searched as one image, the top strip above the bottom one, so the deeper of the two edges'
+    bands is left out, as for a whole micrograph.
+
+    Parameters
+    ----------
+    image : LargeImage
+    box : (x0, y0, x1, y1), optional
+        The user's region, in pixels or fractions of the frame (see ``--region``).
+    auto : bool
+        Look for a data bar inside the box.
+
+    Raises
+    ------
+    TopoclassError
+        When the box does not fit the image or leaves too little to analyse.
+    """
+    rows, cols = image.shape
+    name = str(image.path)
+    # The box in pixels, checked, without reading a pixel (only the shape is looked at).
+    x0, y0, x1, y1 = analysed_region(np.broadcast_to(np.float32(0), (rows, cols)), box,
+                                     auto=False, source=name).box
+    if not auto:
+        return AnalysedRegion((x0, y0, x1, y1), (rows, cols))
+    h = y1 - y0 if y1 - y0 <= 2 * _BAR_STRIP_ROWS else _BAR_STRIP_ROWS
+    top = image.read((x0, y0, x1, y0 + h)).image
+    if h == y1 - y0:
+        strips, gap = top, 0
+    else:
+        strips = np.vstack([top, image.read((x0, y1 - h, x1, y1)).image])
+        gap = (y1 - y0) - 2 * h  # rows between the strips, not read
+    found = analysed_region(strips, auto=True, source=name)
+    bar = found.data_bar
+    if bar is None:
+        return AnalysedRegion((x0, y0, x1, y1), (rows, cols))
+    if bar.edge == "bottom":
+        b0, b1 = y0, found.box[3] + gap + y0
+        boundary = bar.boundary + gap + y0
+    else:
+        b0, b1 = found.box[1] + y0, y1
+        boundary = bar.boundary + y0
+    return AnalysedRegion((x0, b0, x1, b1), (rows, cols),
+                          DataBar(bar.edge, boundary, bar.rows, bar.level, bar.n_marks))
+
+
+def map_spacing(image: LargeImage, box: tuple[int, int, int, int] | None = None) -> float:
     """Lattice spacing of a large image in pixels: the median over a few crops.
 
-    Crops of at most 1024 px at the centre and the centres of the four quarters, each
-    estimated with :func:`topoclass.sites.estimate_spacing`; crops without a lattice are left
-    out.
+    Crops of at most 1024 px at the centre and the centres of the four quarters (of ``box``,
+    the analysed region, when given), each estimated with
+    :func:`topoclass.sites.estimate_spacing`; crops without a lattice are left out.
 
     Raises
     ------
     PatternError
         When no crop shows a lattice spacing.
     """
-    rows, cols = image.shape
+    bx0, by0, bx1, by1 = box or (0, 0, image.shape[1], image.shape[0])
+    rows, cols = by1 - by0, bx1 - bx0
     side = min(_SPACING_PROBE_PX, rows, cols)
     centres = [(cols / 2, rows / 2)]
     if min(rows, cols) >= 2 * side:
         centres += [(cols * fx, rows * fy) for fx in (0.25, 0.75) for fy in (0.25, 0.75)]
     found, why = [], ""
     for cx, cy in centres:
-        x0 = int(min(max(cx - side / 2, 0), cols - side))
-        y0 = int(min(max(cy - side / 2, 0), rows - side))
+        x0 = bx0 + int(min(max(cx - side / 2, 0), cols - side))
+        y0 = by0 + int(min(max(cy - side / 2, 0), rows - side))
         try:
             crop = image.read((x0, y0, x0 + side, y0 + side))
             found.append(estimate_spacing(crop.image, source=crop.source))
@@ -251,8 +319,10 @@ def map_image(
     classes = [str(c) for c in model.classes]
     columns = tile_columns(classes)
     settings = settings or FeatureSettings.from_model(model)
-    # A tile lies inside the analysed region already: no region of its own, no data-bar search
-    # (a tile edge is not an instrument's frame).
+    # The analysed region is found once, on the whole image (large_image_region); a tile lies
+    # inside it, so no region of its own and no data-bar search (a tile edge is not an
+    # instrument's frame).
+    region_box, auto_region = settings.region, settings.auto_region
     settings = dataclasses.replace(settings, region=None, auto_region=False)
     if alpha is not None:
         from topoclass.model.conformal import check_alpha
@@ -266,15 +336,19 @@ def map_image(
                              "it or --overwrite to replace it")
     with open_large_image(image, memory_limit_mb=memory_limit_mb) as big:
         notes = list(big.notes)
-        spacing = map_spacing(big)
+        region = large_image_region(big, region_box, auto=auto_region)
+        if not region.whole:
+            notes.append("left out: " + region.left_out())
+        rx0, ry0, rx1, ry1 = region.box
+        spacing = map_spacing(big, region.box)
         if tile is None:
             tile, why = tile_side(model, spacing)
             notes.append(why)
-        tile = int(min(tile, max(big.shape)))
+        tile = int(min(tile, max(rx1 - rx0, ry1 - ry0)))
         if tile < 32:
             raise TopoclassError(f"tile side {tile} px is too small; give at least 32 pixels")
         overlap_px = min(int(round(overlap * spacing)), tile // 2)
-        plan = plan_tiles(big.shape, tile, overlap_px)
+        plan = plan_tiles(big.shape, tile, overlap_px, box=region.box)
         pixel_size = big.pixel_size_nm if big.pixel_size_nm is not None \
             else settings.pixel_size_nm
         header = {
@@ -282,29 +356,30 @@ def map_image(
             "shape": list(big.shape), "tile_px": plan.tile, "overlap_px": plan.overlap,
             "overlap_spacings": float(overlap), "spacing_px": spacing,
             "pixel_size_nm": pixel_size, "classes": classes, "n_tiles": len(plan),
+            "region": list(region.box),
+            "data_bar": None if region.data_bar is None
+            else dataclasses.asdict(region.data_bar),
             "caution": CAUTION,
         }
         summary = MapSummary(out_dir=out_dir, plan=plan, spacing_px=spacing,
-                             pixel_size_nm=pixel_size, notes=notes)
+                             pixel_size_nm=pixel_size, region=region, notes=notes)
         out_dir.mkdir(parents=True, exist_ok=True)
-        with _OutputLock(tiles_csv):
+        with WriterLock(tiles_csv):
             done = _prepare(out_dir, columns, header, resume=resume)
             todo = [i for i in range(len(plan)) if tuple(plan.boxes[i]) not in done]
             summary.skipped = len(plan) - len(todo)
             with open(tiles_csv, "a", newline="", encoding="utf-8") as fh:
-                for chunk in _chunks(_tile_results(big, plan, todo, settings, jobs, progress),
-                                     16, 5.0):
+                for chunk in in_chunks(_tile_results(big, plan, todo, settings, jobs,
+                                                     progress)):
                     idx = [i for i, _ in chunk]
-                    rows = _score_rows(model, classes, [r for _, r in chunk], alpha)
+                    rows = score_rows(model, classes, [r for _, r in chunk], alpha)
                     for i, row in zip(idx, rows, strict=True):
                         _place(row, plan, i)
                         if row["status"] == "ok":
                             summary.scored += 1
                         else:
                             summary.failed += 1
-                    fh.write("".join(_format_row(row, columns) for row in rows))
-                    fh.flush()
-                    os.fsync(fh.fileno())
+                    write_durably(fh, rows, columns)
     summary.totals = map_totals(read_tiles(tiles_csv), classes, pixel_size)
     _write_totals(out_dir / TOTALS_FILE, summary.totals)
     return summary
@@ -312,10 +387,7 @@ def map_image(
 
 def read_tiles(path: str | Path) -> list[dict[str, str]]:
     """Rows of a ``tiles.csv`` (an incomplete last line, from a crash, is ignored)."""
-    text = Path(path).read_text(encoding="utf-8")
-    if text and not text.endswith("\n"):
-        text = text[: text.rfind("\n") + 1]
-    return list(csv.DictReader(io.StringIO(text)))
+    return read_rows(path)
 
 
 def read_map_header(out_dir: str | Path) -> dict:
@@ -332,7 +404,7 @@ def read_map_header(out_dir: str | Path) -> dict:
 
 def map_totals(rows: Sequence[dict], classes: Sequence[str],
                pixel_size_nm: float | None = None) -> list[dict]:
-    """Share of the image each verdict covers, from the tile cores (which cover it once).
+    """Share of the analysed region under each verdict, from the tile cores (they cover it once).
 
     Returns
     -------
@@ -364,10 +436,11 @@ def map_summary_text(summary: MapSummary) -> str:
              f"{summary.spacing_px:.1f} px): scored {summary.scored}, failed {summary.failed}, "
              f"already done {summary.skipped}"]
     lines += [f"  note: {n}" for n in summary.notes]
+    where = "image" if summary.region is None or summary.region.whole else "analysed region"
     for t in summary.totals:
         if t["tiles"]:
             size = "" if t["area_um2"] is None else f", {t['area_um2']:,.1f} µm²"
-            lines.append(f"  {t['verdict']:<16} {t['fraction']:6.1%} of the image "
+            lines.append(f"  {t['verdict']:<16} {t['fraction']:6.1%} of the {where} "
                          f"({t['tiles']} tiles{size})")
     lines += [f"results: {summary.out_dir / TILES_FILE}", "", "Caution: " + CAUTION]
     return "\n".join(lines)
@@ -457,32 +530,26 @@ def _prepare(out_dir: Path, columns: list[str], header: dict, *, resume: bool) -
     tiles_csv = out_dir / TILES_FILE
     if not (resume and tiles_csv.exists()):
         _write_json(out_dir / MAP_FILE, header)
-        tiles_csv.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
-                             encoding="utf-8")
+        tiles_csv.write_text(csv_header(columns), encoding="utf-8")
         return set()
     earlier = read_map_header(out_dir)
-    same = ("image_sha256", "shape", "tile_px", "overlap_px", "classes")
+    same = ("image_sha256", "shape", "tile_px", "overlap_px", "classes", "region")
     if any(earlier.get(k) != header[k] for k in same):
         raise TopoclassError(
-            f"{tiles_csv}: was made from another image, model or tile size; resume only with "
-            "the same ones, or pass --overwrite"
+            f"{tiles_csv}: was made from another image, model, tile size or region; resume "
+            "only with the same ones, or pass --overwrite"
         )
-    text = tiles_csv.read_text(encoding="utf-8")
-    first = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
-    if first != columns:
-        raise TopoclassError(f"{tiles_csv}: its columns do not match this model or version; "
-                             "pass --overwrite to map again")
-    if not text.endswith("\n"):  # a crash mid-write left half a row: that tile runs again
-        tiles_csv.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
+    reopen_checked(tiles_csv, columns, f"{tiles_csv}: its columns do not match this model or "
+                   "version; pass --overwrite to map again")
     return {tuple(int(r[k]) for k in ("x0", "y0", "x1", "y1")) for r in read_tiles(tiles_csv)}
 
 
 def _write_totals(path: Path, totals: list[dict]) -> None:
     keys = ["verdict", "tiles", "area_px", "fraction", "area_um2"]
     with open(path, "w", newline="", encoding="utf-8") as fh:
-        fh.write(_format_row(dict(zip(keys, keys, strict=True)), keys))
+        fh.write(csv_header(keys))
         for t in totals:
-            fh.write(_format_row({k: ("" if t[k] is None else t[k]) for k in keys}, keys))
+            fh.write(csv_line({k: ("" if t[k] is None else t[k]) for k in keys}, keys))
 
 
 def _write_json(path: Path, data: dict) -> None:

@@ -158,6 +158,26 @@ def coordination(xy: np.ndarray, neighbours: tuple | None = None) -> np.ndarray:
     return np.diff(indptr)
 
 
+def site_coordination(pattern: SitePattern) -> np.ndarray:
+    """Delaunay coordination of every site of a pattern (0 for fewer than 3 sites).
+
+    Uses the pattern's own triangulation (:attr:`SitePattern.delaunay`), which the order
+    measures have usually built already.
+    """
+    if pattern.n_sites < 3:
+        return np.zeros(pattern.n_sites, dtype=np.int64)
+    tri = pattern.delaunay
+    neighbours = (tri.indptr, tri.indices) if tri is not None else None
+    return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
+
+
+def coordination_class(coord: np.ndarray) -> np.ndarray:
+    """The class of each Delaunay coordination as pictures and pages show it: ``≤4``, ``5``,
+    ``6``, ``7``, ``≥8`` (the keys of :data:`topoclass.report.COORDINATION_COLOURS`)."""
+    coord = np.asarray(coord)
+    return np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
+
+
 def psi6(xy: np.ndarray, neighbours: tuple | None = None) -> np.ndarray:
     """Local bond-orientational order ``psi6(j) = (1/N_j) sum_k exp(6 i theta_jk)``.
 

@@ -5,15 +5,13 @@ or Ctrl-C leaves a valid CSV holding every finished image; ``resume=True`` skips
 already in the file (the same file however its path is spelled, with the same content hash) and
 scores the rest. A lock file beside the output keeps two runs from writing the same file at once.
 Rows come in input order whatever the number of jobs, so the same inputs and model give a
-byte-identical file.
+byte-identical file. How a row becomes a line, the lock and the resume checks are
+:mod:`topoclass.rowfile`'s, shared with maps and the store's export.
 """
 
 from __future__ import annotations
 
-import csv
-import io
 import os
-import time
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -25,6 +23,15 @@ from topoclass.amounts import AMOUNT_KEYS
 from topoclass.errors import StoreError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, file_sha256, iter_records
 from topoclass.records import barcode_summary
+from topoclass.rowfile import (
+    WriterLock,
+    csv_header,
+    csv_line,
+    in_chunks,
+    read_rows,
+    reopen_checked,
+    write_durably,
+)
 
 CAUTION = (
     "Probabilities are estimates learned from the labelled training set. Re-validate the model "
@@ -38,13 +45,6 @@ BAND_NOTE = (
     "all others, 'review' when it cannot, 'unfamiliar' when no class fits; its coverage holds "
     "only for images like the labelled training set."
 )
-
-# Images are scored in small chunks: one predict call per image costs the whole forest's
-# overhead each time (about 0.2 s for 5 calibrated forests of 300 trees), a call for 16 images
-# barely more. A chunk is written as soon as it is scored, and at the latest a few seconds
-# after its first image finished, so a killed run loses only images not yet written.
-_CHUNK_IMAGES = 16
-_CHUNK_SECONDS = 5.0
 
 #: Per-image measures written beside the probabilities (persistence values in spacing units).
 MEASURE_COLUMNS = (
@@ -195,7 +195,7 @@ def score_images(
             f"{out}: the output exists; pass --resume to continue it or --overwrite to replace it"
         )
     out.parent.mkdir(parents=True, exist_ok=True)
-    with _OutputLock(out):
+    with WriterLock(out):
         done = _prepare_output(out, columns, resume=resume)
         todo: list[Path] = []
         for p in paths:
@@ -220,16 +220,14 @@ def score_images(
                 todo, settings, cache_dir=cache_dir, jobs=jobs, progress=progress,
                 description="scoring", engine=engine,
             )
-            for chunk in _chunks(results, _CHUNK_IMAGES, _CHUNK_SECONDS):
-                rows = _score_rows(model, classes, chunk, alpha)
+            for chunk in in_chunks(results):
+                rows = score_rows(model, classes, chunk, alpha)
                 if recorder is not None and summary.store_error is None:
                     try:
                         recorder.add(rows)
                     except StoreError as exc:
                         summary.store_error = str(exc)
-                fh.write("".join(_format_row(row, columns) for row in rows))
-                fh.flush()
-                os.fsync(fh.fileno())
+                write_durably(fh, rows, columns)
                 for row in rows:
                     summary._count(row, earlier=False)
     if recorder is not None and summary.store_error is None:
@@ -241,12 +239,55 @@ def score_images(
     return summary
 
 
+def score_rows(model, classes: list[str], results: list[RecordResult],
+               alpha: float | None = None) -> list[dict]:
+    """The ``scores.csv`` rows of measured images, one per result, in order.
+
+    Parameters
+    ----------
+    model : topoclass.model.TrainedModel
+        The model that scores the records.
+    classes : list of str
+        ``model.classes`` as strings (the ``p_<class>`` columns).
+    results : list of RecordResult
+        Measured images (:func:`topoclass.features.iter_records`); a failed one gives an
+        ``error`` row with its message.
+    alpha : float, optional
+        Error rate of the review band behind ``verdict``; the model's own when omitted.
+
+    Returns
+    -------
+    list of dict
+        Rows keyed by column name (:func:`score_columns`); the measured images are predicted
+        in one call.
+    """
+    rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
+    ok = [i for i, r in enumerate(results) if r.ok]
+    for i, r in enumerate(results):
+        if not r.ok:
+            rows[i].update(status="error", message=r.error or "unknown error")
+    if not ok:
+        return rows
+    records = [results[i].record for i in ok]
+    # No try/except here: a record that was measured but cannot be scored is a bug (or a model
+    # that does not fit its own settings) and must fail loudly, not turn into error rows.
+    proba, unfamiliarity, reasons = model.assess(records)
+    proba = np.asarray(proba, dtype=float)
+    unfamiliarity = np.asarray(unfamiliarity, dtype=float)
+    verdicts = model.verdicts(proba, unfamiliarity, alpha=alpha)
+    for k, i in enumerate(ok):
+        rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
+        rows[i]["verdict"] = verdicts[k]
+        if verdicts[k] == "unfamiliar" and unfamiliarity[k] <= 1.0:
+            rows[i]["message"] = "; ".join(
+                m for m in ("no class fits at the review band's error rate; check by eye",
+                            rows[i]["message"]) if m)
+    return rows
+
+
 def read_scores(path: str | Path) -> list[dict[str, str]]:
     """Rows of a ``scores.csv`` as dicts (an incomplete last line, from a crash, is ignored)."""
-    text = Path(path).read_text(encoding="utf-8")
-    if text and not text.endswith("\n"):
-        text = text[: text.rfind("\n") + 1]
-    return list(csv.DictReader(io.StringIO(text)))
+    return read_rows(path)
 
 
 def summary_text(summary: ScoreSummary) -> str:
@@ -297,54 +338,12 @@ def _copy_stored_rows(recorder, todo: list[Path], fh, columns: list[str],
         if row is None:
             rest.append(p)
             continue
-        fh.write(_format_row({**row, "image": str(p)}, columns))
+        fh.write(csv_line({**row, "image": str(p)}, columns))
         summary.skipped += 1
         summary._count(row, earlier=True)
     fh.flush()
     os.fsync(fh.fileno())
     return rest
-
-
-def _chunks(results, size: int, seconds: float):
-    """Group an iterator into lists of at most ``size``, or what ``seconds`` collected."""
-    chunk: list = []
-    started = 0.0
-    for item in results:
-        if not chunk:
-            started = time.monotonic()
-        chunk.append(item)
-        if len(chunk) >= size or time.monotonic() - started >= seconds:
-            yield chunk
-            chunk = []
-    if chunk:
-        yield chunk
-
-
-def _score_rows(model, classes: list[str], results: list[RecordResult],
-                alpha: float | None = None) -> list[dict]:
-    """One row per result, in order; the measured images are predicted in one call."""
-    rows: list[dict] = [{"image": str(r.path), "sha256": r.sha256 or ""} for r in results]
-    ok = [i for i, r in enumerate(results) if r.ok]
-    for i, r in enumerate(results):
-        if not r.ok:
-            rows[i].update(status="error", message=r.error or "unknown error")
-    if not ok:
-        return rows
-    records = [results[i].record for i in ok]
-    # No try/except here: a record that was measured but cannot be scored is a bug (or a model
-    # that does not fit its own settings) and must fail loudly, not turn into error rows.
-    proba, unfamiliarity, reasons = model.assess(records)
-    proba = np.asarray(proba, dtype=float)
-    unfamiliarity = np.asarray(unfamiliarity, dtype=float)
-    verdicts = model.verdicts(proba, unfamiliarity, alpha=alpha)
-    for k, i in enumerate(ok):
-        rows[i].update(_ok_row(classes, results[i], proba[k], unfamiliarity[k], reasons[k]))
-        rows[i]["verdict"] = verdicts[k]
-        if verdicts[k] == "unfamiliar" and unfamiliarity[k] <= 1.0:
-            rows[i]["message"] = "; ".join(
-                m for m in ("no class fits at the review band's error rate; check by eye",
-                            rows[i]["message"]) if m)
-    return rows
 
 
 def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons) -> dict:
@@ -373,18 +372,6 @@ def _ok_row(classes, result: RecordResult, proba, unfamiliarity: float, reasons)
     return row
 
 
-def _format_row(row: dict[str, object], columns: list[str]) -> str:
-    buf = io.StringIO()
-    values = []
-    for c in columns:
-        v = row.get(c, "")
-        if isinstance(v, float | np.floating):
-            v = f"{float(v):.6g}"
-        values.append(v)
-    csv.writer(buf, lineterminator="\n").writerow(values)
-    return buf.getvalue()
-
-
 def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path, list[dict]]:
     """Start a fresh file, or validate and clean an existing one.
 
@@ -392,20 +379,13 @@ def _prepare_output(out: Path, columns: list[str], *, resume: bool) -> dict[Path
     absolute, through a symlink) still finds its row.
     """
     if not (resume and out.exists()):
-        out.write_text(_format_row(dict(zip(columns, columns, strict=True)), columns),
-                       encoding="utf-8")
+        out.write_text(csv_header(columns), encoding="utf-8")
         return {}
-    text = out.read_text(encoding="utf-8")
-    # Parse the header as CSV: a class name may hold a comma or a quote.
-    header = next(csv.reader(io.StringIO(text.split("\n", 1)[0])), [])
-    if header != columns:
-        raise TopoclassError(
-            f"{out}: its columns do not match this model's classes or this version's columns; "
-            "resume only with the model and version that wrote it, or write to a new file"
-        )
-    if not text.endswith("\n"):
-        # A crash mid-write left half a row: cut it, that image is scored again.
-        out.write_text(text[: text.rfind("\n") + 1], encoding="utf-8")
+    reopen_checked(
+        out, columns,
+        f"{out}: its columns do not match this model's classes or this version's columns; "
+        "resume only with the model and version that wrote it, or write to a new file",
+    )
     done: dict[Path, list[dict]] = {}
     for r in read_scores(out):
         done.setdefault(_same_file_key(r["image"]), []).append(r)
@@ -421,65 +401,7 @@ def _drop_rows(out: Path, columns: list[str], key: Path) -> None:
     rows = [r for r in read_scores(out) if _same_file_key(r["image"]) != key]
     tmp = out.with_name(out.name + ".tmp")
     with open(tmp, "w", newline="", encoding="utf-8") as fh:
-        fh.write(_format_row(dict(zip(columns, columns, strict=True)), columns))
+        fh.write(csv_header(columns))
         for r in rows:
-            fh.write(_format_row(r, columns))
+            fh.write(csv_line(r, columns))
     os.replace(tmp, out)
-
-
-class _OutputLock:
-    """An exclusive lock file ``<out>.lock`` holding the writer's PID.
-
-    A lock left by a process that no longer runs (killed) is taken over, so a killed run can be
-    resumed without manual clean-up; so is an empty or garbled lock older than
-    ``_EMPTY_LOCK_SECONDS`` (a crash between creating the file and writing the PID).
-    """
-
-    def __init__(self, out: Path):
-        self.path = out.with_name(out.name + ".lock")
-
-    def __enter__(self) -> _OutputLock:
-        for _ in range(2):
-            try:
-                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
-            except FileExistsError:
-                if _lock_is_stale(self.path):
-                    self.path.unlink(missing_ok=True)
-                    continue
-                raise TopoclassError(
-                    f"{self.path.with_suffix('')}: another topoclass run is writing this file "
-                    f"(lock {self.path}); wait for it to finish or write to another file"
-                ) from None
-            with os.fdopen(fd, "w") as fh:
-                fh.write(str(os.getpid()))
-            return self
-        raise TopoclassError(f"{self.path}: cannot take the output lock; remove it if no run is "
-                             "active")
-
-    def __exit__(self, *exc) -> None:
-        self.path.unlink(missing_ok=True)
-
-
-#: An empty lock this old cannot belong to a live run: the PID is written right after creation.
-_EMPTY_LOCK_SECONDS = 10.0
-
-
-def _lock_is_stale(path: Path) -> bool:
-    try:
-        text = path.read_text().strip()
-        age = time.time() - path.stat().st_mtime
-    except OSError:
-        return False
-    try:
-        pid = int(text)
-    except ValueError:
-        pid = 0
-    if pid <= 0:
-        return age > _EMPTY_LOCK_SECONDS
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return True
-    except PermissionError:
-        return False
-    return False

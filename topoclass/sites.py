@@ -1,6 +1,7 @@
 """Find the lattice sites (centres of pores or dots) in a micrograph.
 
-Stage 2 of the pipeline: a 2-D float image in [0, 1] becomes a :class:`SitePattern`.
+Stage 2 of the pipeline: a 2-D float image in [0, 1] becomes a :class:`SitePattern`. Only the
+region given (:mod:`topoclass.region`: the frame less an instrument data bar) is searched.
 
 How the sites are found
 -----------------------
@@ -24,8 +25,15 @@ How the sites are found
 6. The spacing is re-measured as the median first-shell bond length of the sites, and the
    detection repeated once when it moved by more than 3 %.
 
-A pure-noise image (no feature stands clearly above the noise) raises :class:`PatternError`
-rather than returning a pattern: later stages need real sites.
+A pattern with no preferred spacing (no ring, no autocorrelation peak, or one so weak that no
+feature stands out at it: randomly nucleated pits) takes the filter scale from the spots'
+own size instead (scale-space search of the normalised Laplacian); its spots sit on a flat
+background, so they must stand 4 noise sigmas high and far above the filter's spread over the
+background (which smooth random texture does not). Its spacing is that of a triangular lattice
+of the same density, and ``preferred_spacing`` is False.
+
+An image with no spots at all (no feature stands clearly above the noise) raises
+:class:`PatternError` rather than returning a pattern: later stages need real sites.
 """
 
 from __future__ import annotations

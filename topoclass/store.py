@@ -39,6 +39,7 @@ from sqlalchemy.engine import URL, Connection, Engine, make_url
 
 from topoclass import __version__
 from topoclass.errors import StoreError
+from topoclass.rowfile import csv_header, csv_line
 from topoclass.scoring import AMOUNT_COLUMNS, MEASURE_COLUMNS, score_columns
 
 #: The schema revision this topoclass writes (the newest script in ``store_migrations``).
@@ -509,20 +510,18 @@ def write_scores_csv(store: ResultStore, out: str | os.PathLike, *, batch: int |
 
     Used to build the batch report from a store query. Returns the number of rows.
     """
-    from topoclass.scoring import _format_row
-
     frame = store.results(since=since, model=model, batch=batch)
     classes = [c[2:] for c in frame.columns if c.startswith("p_")]
     columns = score_columns(classes)
     out = Path(out)
     out.parent.mkdir(parents=True, exist_ok=True)
     with open(out, "w", newline="", encoding="utf-8") as fh:
-        fh.write(_format_row(dict(zip(columns, columns, strict=True)), columns))
+        fh.write(csv_header(columns))
         for rec in frame.to_dict("records"):
             rec = {k: ("" if _missing(v) else v) for k, v in rec.items()}
             if rec.get("unfamiliar") != "":
                 rec["unfamiliar"] = "yes" if rec["unfamiliar"] else "no"
-            fh.write(_format_row(rec, columns))
+            fh.write(csv_line(rec, columns))
     return len(frame)
 
 

@@ -71,7 +71,14 @@ def hexagonal_lattice(
     rows, cols = int(shape[0]), int(shape[1])
     half = 0.5 * np.hypot(rows, cols) + 2 * spacing
     n = int(np.ceil(half / spacing)) + 1
-    i, j = np.meshgrid(np.arange(-n, n + 1), np.arange(-2 * n, 2 * n + 1), indexing="ij")
+    i, j = np.meshgrid(np.arange(-2 * n, 2 * n + 1), np.arange(-2 * n, 2 * n + 1),
+                       indexing="ij")
+    # The sheared index block |i| <= n, |j| <= 2n reaches only 0.87 of ``half`` towards two
+    # of its corners, which left a corner of large frames empty; |i| <= 2n covers the circle.
+    # Its points come first, so their jitter (and every frame it covered) stays as it was.
+    first = np.abs(i.ravel()) <= n
+    order = np.concatenate([np.flatnonzero(first), np.flatnonzero(~first)])
+    i, j = i.ravel()[order], j.ravel()[order]
     # Primitive vectors of the triangular lattice: (a, 0) and (a/2, a*sqrt(3)/2).
     u = spacing * (i + 0.5 * j)
     v = spacing * (np.sqrt(3.0) / 2.0) * j
@@ -596,7 +603,7 @@ def write_dataset(
             if as_tiff:
                 _write_tiff16(out / name, image, truth["pixel_size_nm"])
             else:
-                _write_png8(out / name, image)
+                write_grey_png(out / name, image)
             record = {"image": name, "label": kind, "group": group,
                       "format": "tiff16" if as_tiff else "png8"}
             record.update(truth)
@@ -608,6 +615,27 @@ def write_dataset(
             groups.append(group)
             advance()
     return write_labels(out / "labels.csv", names, labels, groups)
+
+
+def grains_per_spacing2(set_dir: str | Path) -> float:
+    """Median number of grains per lattice spacing squared in the grain images of a written set.
+
+    Read from the truth files of :func:`write_dataset`; a larger invented field given
+    ``amounts={"n_grains": round(value * (size / spacing) ** 2)}`` then holds grains of the
+    set's size.
+
+    Raises
+    ------
+    ValueError
+        When the set holds no grain image.
+    """
+    values = []
+    for path in sorted((Path(set_dir) / "truth").glob("grains_*.json")):
+        t = json.loads(path.read_text(encoding="utf-8"))
+        values.append(t["n_grains"] * t["spacing_px"] ** 2 / t["size"] ** 2)
+    if not values:
+        raise ValueError(f"{set_dir}: no grains truth files (truth/grains_*.json)")
+    return float(np.median(values))
 
 
 # --------------------------------------------------------------------------------------------
@@ -1003,7 +1031,8 @@ def _in_frame(xy: np.ndarray, shape, margin: float = 0.0) -> np.ndarray:
     )
 
 
-def _write_png8(path: Path, image: np.ndarray) -> None:
+def write_grey_png(path: Path, image: np.ndarray) -> None:
+    """Save an image in [0, 1] as an 8-bit grey PNG (values clipped, rounded to 0..255)."""
     # PIL writes no time chunk, so the bytes depend on the pixels only.
     data = np.round(np.clip(image, 0, 1) * 255).astype(np.uint8)
     Image.fromarray(data).save(path, format="PNG")

@@ -9,16 +9,20 @@
 
 from topoclass.labeling.ranking import (
     MIN_PER_CLASS,
+    PoolFeatures,
     Suggestion,
     diverse_order,
+    estimate_from_rows,
     estimate_macro_f1,
     margin_uncertainty,
     rank_records,
+    rank_rows,
     suggest_from_sheet,
 )
 from topoclass.labeling.sheet import LabelBook
 
 __all__ = [
-    "MIN_PER_CLASS", "LabelBook", "Suggestion", "diverse_order", "estimate_macro_f1",
-    "margin_uncertainty", "rank_records", "suggest_from_sheet",
+    "MIN_PER_CLASS", "LabelBook", "PoolFeatures", "Suggestion", "diverse_order",
+    "estimate_from_rows", "estimate_macro_f1", "margin_uncertainty", "rank_records",
+    "rank_rows", "suggest_from_sheet",
 ]

@@ -183,6 +183,12 @@ class PoolFeatures:
             self._rows.update(zip((keys[i] for i in new), values, strict=True))
         return np.vstack([self._rows[k] for k in keys])
 
+    def transform(self, records: Sequence) -> np.ndarray:
+        """Rows of other images (a held-out set) with the current transform; not kept."""
+        if self._transform is None:
+            raise ValueError("PoolFeatures.rows must be called before transform")
+        return _bounded(self._transform.transform(list(records)))
+
     def __len__(self) -> int:
         return len(self._rows)
 

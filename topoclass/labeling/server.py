@@ -465,18 +465,22 @@ def _png_cached(path: str, mtime: float, side: int, max_pixels: int) -> bytes:
     return buf.getvalue()
 
 
-def _png_of(path: Path, side: int, max_pixels: int) -> bytes:
+def _mtime(path: Path) -> float:
+    """The file's modification time (the caches' key, so an edited file is read again)."""
     try:
-        mtime = path.stat().st_mtime
+        return path.stat().st_mtime
     except OSError as exc:
         raise TopoclassError(f"{path}: cannot read the file ({exc.strerror}); check that it "
                              "exists") from None
-    return _png_cached(str(path), mtime, side, max_pixels)
+
+
+def _png_of(path: Path, side: int, max_pixels: int) -> bytes:
+    return _png_cached(str(path), _mtime(path), side, max_pixels)
 
 
 @lru_cache(maxsize=32)
 def _sites_cached(path: str, mtime: float, settings: FeatureSettings) -> dict:
-    from topoclass.report.figures import coordination_class, site_coordination
+    from topoclass.order import coordination_class, site_coordination
 
     pattern = measure_image(path, settings).pattern
     rows, cols = pattern.shape
@@ -487,12 +491,7 @@ def _sites_cached(path: str, mtime: float, settings: FeatureSettings) -> dict:
 
 
 def _sites_of(path: Path, settings: FeatureSettings) -> dict:
-    try:
-        mtime = path.stat().st_mtime
-    except OSError as exc:
-        raise TopoclassError(f"{path}: cannot read the file ({exc.strerror}); check that it "
-                             "exists") from None
-    return _sites_cached(str(path), mtime, settings)
+    return _sites_cached(str(path), _mtime(path), settings)
 
 
 def _finite(value) -> float | None:

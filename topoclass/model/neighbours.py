@@ -89,8 +89,14 @@ class LabelledDiagrams:
     def distances(self, h1: np.ndarray) -> np.ndarray:
         """Sliced Wasserstein distance from ``h1`` to every training diagram."""
         dirs = _directions(self.n_directions)
-        query = _as_bars(h1)
-        return np.array([_sliced(query, self.diagram(i), dirs) for i in range(len(self))])
+        query = _projections(_as_bars(h1), dirs)
+        # The training diagrams' sorted projections are made once per model in this process
+        # (a report asks for every scored image), not once per pair.
+        key = (id(self.bars), self.bars.shape, self.n_directions)
+        if getattr(self, "_projected_key", None) != key:
+            self._projected = [_projections(self.diagram(i), dirs) for i in range(len(self))]
+            self._projected_key = key
+        return np.array([_sliced_sorted(*query, *other) for other in self._projected])
 
     def nearest(self, h1: np.ndarray, k: int = 3) -> list[dict]:
         """The ``k`` training images closest to ``h1``, closest first.
@@ -189,10 +195,19 @@ def _as_bars(bars) -> np.ndarray:
 
 
 def _sliced(a: np.ndarray, b: np.ndarray, dirs: np.ndarray) -> float:
+    return _sliced_sorted(*_projections(a, dirs), *_projections(b, dirs))
+
+
+def _projections(bars: np.ndarray, dirs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted projections of a diagram's points and of their diagonal feet: one row per
+    direction (rows are contiguous, which makes the sorts below about twice as fast)."""
+    on_diag = np.repeat(bars.sum(axis=1, keepdims=True) / 2.0, 2, axis=1)
+    return np.sort(dirs @ bars.T, axis=1), np.sort(dirs @ on_diag.T, axis=1)
+
+
+def _sliced_sorted(points_a, diag_a, points_b, diag_b) -> float:
     # Each side gets the diagonal projections of the other's points, so both have n_a + n_b
     # points and the 1-D transport is a matching of sorted projections (Carrière et al. 2017).
-    on_diag_a = np.repeat(a.sum(axis=1, keepdims=True) / 2.0, 2, axis=1)
-    on_diag_b = np.repeat(b.sum(axis=1, keepdims=True) / 2.0, 2, axis=1)
-    left = np.sort(np.vstack([a, on_diag_b]) @ dirs.T, axis=0)
-    right = np.sort(np.vstack([b, on_diag_a]) @ dirs.T, axis=0)
-    return float(np.abs(left - right).sum(axis=0).mean())
+    left = np.sort(np.concatenate([points_a, diag_b], axis=1), axis=1)
+    right = np.sort(np.concatenate([points_b, diag_a], axis=1), axis=1)
+    return float(np.abs(left - right).sum(axis=1).mean())

@@ -7,7 +7,11 @@ The last stage of the pipeline; it may read every stage to its left and draws wh
   training and validation figures (confusion matrix, reliability diagram, per-class bars,
   feature importance);
 * ``importance`` — permutation importance of a trained model's features;
-* ``batch_page`` — one self-contained HTML page beside a ``scores.csv``.
+* ``batch_page`` — one self-contained HTML page beside a ``scores.csv``;
+* ``detail_view`` — the light view of one image in that page (SVG layers over one JPEG);
+* ``map_view`` — ``map.png`` and ``map.html`` of a map folder (:mod:`topoclass.mapping`).
+
+``site_coordination`` and ``coordination_class`` are :mod:`topoclass.order`'s, named here too.
 """
 
 from topoclass.defects import (
@@ -18,6 +22,7 @@ from topoclass.defects import (
     locate_defects,
     write_defects_csv,
 )
+from topoclass.order import coordination_class, site_coordination
 from topoclass.report.batch_page import (
     MAX_DETAILS,
     MAX_THUMBNAILS,
@@ -30,7 +35,6 @@ from topoclass.report.figures import (
     COORDINATION_COLOURS,
     DEFECT_COLOURS,
     MAX_DRAWN_DEFECTS,
-    coordination_class,
     diagram_and_barcode_figure,
     image_to_figure_pixels,
     plot_confusion,
@@ -41,7 +45,6 @@ from topoclass.report.figures import (
     plot_reliability,
     plot_sites,
     save_figure,
-    site_coordination,
     write_inspection_figures,
     write_metric_figures,
     write_training_figures,

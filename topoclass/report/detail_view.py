@@ -19,14 +19,9 @@ from pathlib import Path
 import numpy as np
 
 from topoclass.defects import defect_counts, locate_defects, write_defects_csv
+from topoclass.order import coordination_class, site_coordination
 from topoclass.persistence import Diagrams
-from topoclass.report.figures import (
-    COORDINATION_COLOURS,
-    DEFECT_COLOURS,
-    MAX_DRAWN_DEFECTS,
-    coordination_class,
-    site_coordination,
-)
+from topoclass.report.figures import COORDINATION_COLOURS, DEFECT_COLOURS, MAX_DRAWN_DEFECTS
 from topoclass.sites import SitePattern
 
 #: Longest side of the micrograph layer, in pixels; a larger image is reduced to it.

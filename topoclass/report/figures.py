@@ -34,6 +34,7 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
 from topoclass.defects import defect_counts, locate_defects, write_defects_csv
+from topoclass.order import coordination_class, site_coordination
 from topoclass.persistence import Diagrams
 from topoclass.report.importance import feature_importance
 from topoclass.sites import SitePattern
@@ -280,28 +281,6 @@ def write_inspection_figures(image: np.ndarray, pattern: SitePattern, diagrams: 
     save_figure(plot_defects(image, pattern, defects, max_drawn=max_drawn), paths[2])
     write_defects_csv(defects, paths[3])
     return paths
-
-
-def site_coordination(pattern: SitePattern) -> np.ndarray:
-    """Delaunay coordination of every site (via :func:`topoclass.order.coordination`).
-
-    Uses the pattern's own triangulation (:attr:`SitePattern.delaunay`), which the order
-    measures have usually built already.
-    """
-    from topoclass.order import coordination
-
-    if pattern.n_sites < 3:
-        return np.zeros(pattern.n_sites, dtype=np.int64)
-    tri = pattern.delaunay
-    neighbours = (tri.indptr, tri.indices) if tri is not None else None
-    return np.asarray(coordination(pattern.xy, neighbours), dtype=np.int64)
-
-
-def coordination_class(coord: np.ndarray) -> np.ndarray:
-    """The key of :data:`COORDINATION_COLOURS` for each Delaunay coordination (``≤4``, ``5``,
-    ``6``, ``7``, ``≥8``)."""
-    coord = np.asarray(coord)
-    return np.where(coord <= 4, "≤4", np.where(coord >= 8, "≥8", coord.astype(str)))
 
 
 def image_to_figure_pixels(shape: tuple[int, int]) -> tuple[float, int]:

@@ -5,8 +5,10 @@ Both are drawn from a map folder written by :func:`topoclass.mapping.map_image` 
 (:func:`topoclass.bigimage.overview`). Tiles are tinted over their *cores* (which cover the
 image once) in the class colours of the report (Okabe & Ito 2008, :data:`CLASS_COLOURS`);
 tiles whose verdict is not a class are grey (review light, unfamiliar dark) and tiles that
-could not be measured are left untinted. The page works offline: the picture is embedded, the
-zoom and the per-tile details are a script of ``topoclass/pages/assets``.
+could not be measured are left untinted. An instrument data bar left out of the analysed region
+(:func:`topoclass.mapping.large_image_region`) is hatched and labelled, and a region smaller
+than the frame is outlined. The page works offline: the picture is embedded, the zoom and the
+per-tile details are a script of ``topoclass/pages/assets``.
 """
 
 from __future__ import annotations
@@ -20,7 +22,7 @@ from pathlib import Path
 
 import numpy as np
 from matplotlib.figure import Figure
-from matplotlib.patches import Patch
+from matplotlib.patches import Patch, Rectangle
 
 from topoclass.bigimage import DEFAULT_MEMORY_LIMIT_MB, open_large_image, overview
 from topoclass.mapping import (
@@ -37,6 +39,7 @@ from topoclass.scoring import CAUTION
 OTHER_COLOURS = {"review": "#BBBBBB", "unfamiliar": "#444444", "not measured": None}
 
 _TINT_ALPHA = 0.4
+_LEFT_OUT = {"bar": "instrument data bar (left out)", "region": "analysed region"}
 _OVERVIEW_PX = 2000
 
 
@@ -129,6 +132,15 @@ def _write_picture(path: Path, small, tint, totals, colours, header) -> None:
     ax = fig.add_axes((0.2 / width_in, below / fig_h, 1 - 0.4 / width_in, image_in / fig_h))
     ax.imshow((rgb * 255).astype(np.uint8), interpolation="nearest")
     ax.set_axis_off()
+    # Picture pixels per image pixel, for drawing image boxes over the shrunk picture.
+    scale = w / header["shape"][1]
+    left_out = _left_out(header)
+    for (x0, y0, x1, y1), kind in left_out:
+        ax.add_patch(Rectangle(
+            (x0 * scale - 0.5, y0 * scale - 0.5), (x1 - x0) * scale, (y1 - y0) * scale,
+            fill=kind == "bar", facecolor="white", alpha=0.9 if kind == "bar" else 1.0,
+            edgecolor="#D55E00", hatch="//" if kind == "bar" else None,
+            linestyle="-" if kind == "bar" else "--", linewidth=1.0))
     ax.set_title(f"{Path(header['image']).name}: tiles of {header['tile_px']} px by class",
                  fontsize=9)
     handles = []
@@ -138,12 +150,32 @@ def _write_picture(path: Path, small, tint, totals, colours, header) -> None:
         colour = colours.get(t["verdict"])
         handles.append(Patch(facecolor=colour or "none", edgecolor="black", linewidth=0.5,
                              label=_legend_label(t) + ("" if colour else " (no tint)")))
+    for _, kind in left_out:
+        handles.append(Patch(facecolor="white" if kind == "bar" else "none",
+                             edgecolor="#D55E00", hatch="//" if kind == "bar" else None,
+                             linestyle="-" if kind == "bar" else "--", label=_LEFT_OUT[kind]))
     fig.legend(handles=handles, loc="upper center", bbox_to_anchor=(0.5, (below - 0.05) / fig_h),
                ncol=min(3, len(handles)), fontsize=7, frameon=False,
-               title="share of the image (tile cores)", title_fontsize=7)
+               title=f"share of the {'analysed region' if left_out else 'image'} (tile cores)",
+               title_fontsize=7)
     fig.text(0.5, 0.08 / fig_h, "\n".join(textwrap.wrap("Caution: " + CAUTION, 150)), ha="center",
              va="bottom", fontsize=5.5)
     fig.savefig(path)
+
+
+def _left_out(header: dict) -> list[tuple[tuple[int, int, int, int], str]]:
+    """Image boxes to mark: the data bar (``"bar"``) and the analysed region (``"region"``,
+    when it is not the whole frame)."""
+    rows, cols = header["shape"]
+    region = tuple(header.get("region") or (0, 0, cols, rows))
+    marks = []
+    bar = header.get("data_bar")
+    if bar:
+        y0 = bar["boundary"] if bar["edge"] == "bottom" else bar["boundary"] - bar["rows"]
+        marks.append(((region[0], y0, region[2], y0 + bar["rows"]), "bar"))
+    if region != (0, 0, cols, rows):
+        marks.append((region, "region"))
+    return marks
 
 
 def _jpeg(small: np.ndarray) -> str:
@@ -180,13 +212,21 @@ def _page(small, factor, rows, totals, colours, header) -> str:
             f"<tr><td><span class='swatch' style='background:"
             f"{colours.get(t['verdict']) or 'none'}'></span>{e(t['verdict'])}</td>"
             f"<td>{t['tiles']}</td><td>{t['fraction']:.1%}</td><td>{area}</td></tr>")
+    marks = []
+    for (x0, y0, x1, y1), kind in _left_out(header):
+        marks.append(f"<rect class='left-out {kind}' x='{x0}' y='{y0}' width='{x1 - x0}' "
+                     f"height='{y1 - y0}'><title>{e(_LEFT_OUT[kind])}</title></rect>")
+    bar = header.get("data_bar")
+    bar_text = ("" if not bar else
+                f" The instrument data bar along the {e(bar['edge'])} edge ({bar['rows']} rows) "
+                "is left out of the tiles and hatched on the picture.")
     body = (
         f"<h1>Map of {e(Path(header['image']).name)}</h1>"
         f"<p class='caution'><strong>Caution.</strong> {e(CAUTION)}</p>"
         f"<p>{cols_img} × {rows_img} px; {len(rows)} of {header['n_tiles']} tiles of "
         f"{header['tile_px']} px (overlap {header['overlap_px']} px, lattice spacing "
         f"{header['spacing_px']:.1f} px). Each tile is tinted over the part of the image it "
-        "stands for; click a tile for its scores.</p>"
+        f"stands for; click a tile for its scores.{bar_text}</p>"
         "<table class='totals'><thead><tr><th>verdict</th><th>tiles</th><th>share</th>"
         "<th>area µm²</th></tr></thead><tbody>" + "".join(legend) + "</tbody></table>"
         "<div class='map-tools'><button id='zoom-in' type='button'>+</button>"
@@ -199,7 +239,7 @@ def _page(small, factor, rows, totals, colours, header) -> str:
         f"<image href='data:image/jpeg;base64,{_jpeg(small)}' x='0' y='0' "
         f"width='{small.shape[1] * factor}' height='{small.shape[0] * factor}' "
         "preserveAspectRatio='none'/>"
-        f"<g id='tiles'>{''.join(rects)}</g></svg>"
+        f"<g id='tiles'>{''.join(rects)}</g><g id='left-out'>{''.join(marks)}</g></svg>"
         "<aside id='tile-detail'><p>Click a tile.</p></aside></div>"
         f"<script type='application/json' id='tile-data'>{_json_for_script(data)}</script>"
     )
