@@ -311,3 +311,36 @@ def test_map_leaves_the_data_bar_out_of_every_tile(tmp_path, small_model):
     assert "class='left-out bar'" in text and f"y='{boundary}'" in text
     with Image.open(png) as im:
         assert im.size[0] > 1000
+
+
+# ------------------------------------------------------------------ on a Dask cluster
+
+
+def test_map_on_a_local_cluster_writes_the_rows_of_one_process(tmp_path, small_model,
+                                                               monkeypatch, capsys):
+    # Reference: the project's own single-process map (jobs=1), as score --cluster is checked
+    # in tests/test_cluster.py; two local worker processes on 127.0.0.1, closed at the end.
+    pytest.importorskip("distributed", reason='the cluster extra is not installed (pip install '
+                        '".[cluster]")')
+    import sys
+
+    from topoclass.cli import main
+    from topoclass.model import load_model
+    from topoclass.synth import add_data_bar, draw_sample, make_micrograph
+
+    sample = draw_sample("vacancies", seed=101)
+    sample["spacing_range_px"] = [SPACING, SPACING]
+    field = make_micrograph("vacancies", size=480, seed=201, sample=sample)[0]
+    pixels, _ = add_data_bar(field, edge="top", seed=6)
+    path = tmp_path / "scan.tif"
+    tifffile.imwrite(path, (pixels * 65535).astype(np.uint16), tile=(128, 128))
+    one = tmp_path / "one"
+    map_image(load_model(small_model.directory), path, one)
+    out = tmp_path / "cluster"
+    monkeypatch.setattr(sys, "argv", ["topoclass", "map", str(small_model.directory), str(path),
+                                      "--out", str(out), "--cluster", "local:2"])
+    main()
+    captured = capsys.readouterr()
+    assert "cluster: local cluster on 127.0.0.1, 2 worker(s)" in captured.err
+    assert (out / "tiles.csv").read_text() == (one / "tiles.csv").read_text()
+    assert (out / "map.png").exists() and "Caution" in captured.out

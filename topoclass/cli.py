@@ -608,6 +608,7 @@ def map_command(
                                        "cannot be read in pieces may take to read whole."),
     alpha: float | None = typer.Option(None, "--alpha", help=_ALPHA_HELP
                                        + " Default: the one the model was trained with."),
+    cluster: str | None = typer.Option(None, "--cluster", help=_CLUSTER_HELP),
 ) -> None:
     """Map where each class sits on a large micrograph, tile by tile."""
     from topoclass.mapping import map_image, map_summary_text
@@ -615,9 +616,10 @@ def map_command(
     from topoclass.report.map_view import write_map_views
 
     trained = load_model(model_dir)
-    summary = map_image(trained, image, out, tile=tile, overlap=overlap, jobs=jobs,
-                        resume=resume, overwrite=overwrite, memory_limit_mb=memory_limit,
-                        progress=True, alpha=alpha)
+    with _cluster_engine(cluster, jobs) as engine:
+        summary = map_image(trained, image, out, tile=tile, overlap=overlap, jobs=jobs,
+                            resume=resume, overwrite=overwrite, memory_limit_mb=memory_limit,
+                            progress=True, alpha=alpha, engine=engine)
     png, page = write_map_views(out, image, memory_limit_mb=memory_limit)
     typer.echo(map_summary_text(summary))
     typer.echo(f"map: {png}\npage: {page}")

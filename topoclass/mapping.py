@@ -36,6 +36,7 @@ import numpy as np
 
 from topoclass._files import file_sha256
 from topoclass._progress import progress_bar
+from topoclass._workers import end_with_parent, pool_owner
 from topoclass.bigimage import DEFAULT_MEMORY_LIMIT_MB, LargeImage, open_large_image
 from topoclass.errors import PatternError, TopoclassError
 from topoclass.features import FeatureSettings, RecordResult, measure_micrograph
@@ -281,6 +282,7 @@ def map_image(
     memory_limit_mb: float = DEFAULT_MEMORY_LIMIT_MB,
     progress: bool = False,
     alpha: float | None = None,
+    engine=None,
 ) -> MapSummary:
     """Score every tile of a large micrograph; write ``tiles.csv``, ``map.json``, ``totals.csv``.
 
@@ -310,6 +312,10 @@ def map_image(
         Progress bar on stderr.
     alpha : float, optional
         Error rate of the review band behind ``verdict`` (the model's own when omitted).
+    engine : topoclass.cluster.ClusterEngine, optional
+        Measure each tile as a task on a Dask cluster instead (``jobs`` is then ignored), as
+        ``score --cluster`` does; rows still come back in tile order to this process, the one
+        writer. Every worker must see the image under the same path.
 
     Returns
     -------
@@ -335,6 +341,12 @@ def map_image(
         raise TopoclassError(f"{tiles_csv}: a map exists in {out_dir}; pass --resume to continue "
                              "it or --overwrite to replace it")
     with open_large_image(image, memory_limit_mb=memory_limit_mb) as big:
+        if engine is not None and big.access == "whole" \
+                and getattr(engine.spec, "local_workers", None) is None:
+            raise TopoclassError(
+                f"{image}: a PNG or JPEG is read whole into a temporary file on this machine, "
+                "which the cluster's workers cannot see; save it as a tiled TIFF, or map it "
+                "with --jobs or --cluster local:N")
         notes = list(big.notes)
         region = large_image_region(big, region_box, auto=auto_region)
         if not region.whole:
@@ -370,7 +382,7 @@ def map_image(
             summary.skipped = len(plan) - len(todo)
             with open(tiles_csv, "a", newline="", encoding="utf-8") as fh:
                 for chunk in in_chunks(_tile_results(big, plan, todo, settings, jobs,
-                                                     progress)):
+                                                     progress, engine)):
                     idx = [i for i, _ in chunk]
                     rows = score_rows(model, classes, [r for _, r in chunk], alpha)
                     for i, row in zip(idx, rows, strict=True):
@@ -472,10 +484,12 @@ def _axis(length: int, tile: int, overlap: int) -> tuple[list, list]:
 
 
 def _tile_results(big: LargeImage, plan: TilePlan, todo: list[int], settings: FeatureSettings,
-                  jobs: int, progress: bool):
+                  jobs: int, progress: bool, engine=None):
     work = _TileWorker(big, settings)
     boxes = [tuple(int(v) for v in plan.boxes[i]) for i in todo]
-    if jobs == 1 or len(boxes) <= 1:
+    if engine is not None:
+        results = engine.imap(_TileOnWorker(work), [(b,) for b in boxes], lost=work.given_up)
+    elif jobs == 1 or len(boxes) <= 1:
         results = (work(b) for b in boxes)
     else:
         from joblib import Parallel, delayed
@@ -497,9 +511,11 @@ class _TileWorker:
     def __init__(self, big: LargeImage, settings: FeatureSettings):
         self.big = big
         self.settings = settings
+        self.owner = pool_owner()
 
     def __call__(self, box: tuple[int, int, int, int]) -> RecordResult:
-        name = Path(f"{self.big.path} [tile {','.join(map(str, box))}]")
+        end_with_parent(self.owner)  # a pool worker must not outlive a killed run
+        name = self.tile_name(box)
         try:
             measured = measure_micrograph(self.big.read(box), self.settings)
         except TopoclassError as exc:
@@ -507,6 +523,38 @@ class _TileWorker:
             # else is a bug and stops the run.
             return RecordResult(name, "", None, " ".join(str(exc).split()))
         return RecordResult(name, "", measured.record, notes=measured.micrograph.notes)
+
+    def tile_name(self, box) -> Path:
+        return Path(f"{self.big.path} [tile {','.join(map(str, box))}]")
+
+    def given_up(self, box, reason: str) -> RecordResult:
+        """The error row of a tile whose cluster task killed workers too often."""
+        return RecordResult(self.tile_name(box), "", None,
+                            f"{self.tile_name(box)}: {reason}; map again with --resume on "
+                            "workers with more memory, or with a smaller --tile")
+
+
+class _TileOnWorker:
+    """One tile as a cluster task: one BLAS thread, the image by its absolute path, and an
+    image the worker cannot see is that tile's error row, naming the worker."""
+
+    def __init__(self, work: _TileWorker):
+        big = dataclasses.replace(work.big, path=Path(work.big.path).absolute(), _handle=None)
+        self.work = _TileWorker(big, work.settings)
+
+    def __call__(self, box: tuple[int, int, int, int]) -> RecordResult:
+        from topoclass.cluster import worker_name
+
+        path = self.work.big.path
+        if not path.is_file():
+            return RecordResult(self.work.tile_name(box), "", None,
+                                f"{path}: not found on cluster worker {worker_name()}; put the "
+                                "image in a folder every worker sees under the same path")
+        result = _limited(self.work, box)
+        if result.ok:
+            return result
+        return dataclasses.replace(result, error=f"{result.error} (on cluster worker "
+                                   f"{worker_name()})")
 
 
 def _limited(work, box):
