@@ -67,8 +67,9 @@ def test_square_lattice_is_unfamiliar(small_model, tmp_path):
     assert np.all(score > 1.0), (score, reasons)
     assert all(reasons)
     assert model.verdicts(proba, score) == ["unfamiliar"] * len(records)
-    # Beyond the threshold the fade keeps less than the default 0.8 of the classifier's answer.
-    assert np.all(proba.max(axis=1) < 0.8 + 0.2 / proba.shape[1])
+    # Beyond the threshold the fade keeps less than the weight left at the threshold.
+    a = model.doubt.at_threshold
+    assert np.all(proba.max(axis=1) < a + (1 - a) / proba.shape[1])
 
 
 def test_harder_sample_is_harder():
