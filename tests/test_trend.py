@@ -200,3 +200,45 @@ def test_batch_report_says_why_a_small_batch_has_no_charts(tmp_path):
     page = write_batch_report(scores, details=0).read_text(encoding="utf-8")
     assert "<svg" not in page.split("id='trend'")[1][:400]
     assert "4 scored images: control charts need at least 10" in page
+
+
+def test_limits_from_a_models_training_images_of_one_class(small_model, small_dataset, tmp_path):
+    # The model folder keeps its training images' amounts; `trend --model --reference-class`
+    # sets the limits from those of one class. Reference: the individuals-chart rule computed
+    # by hand with numpy on that class's rows (d2 = 1.128, value from memory).
+    from topoclass.trend import REFERENCE_FILE, read_model_reference
+
+    folder = small_model.directory
+    table = pd.read_csv(folder / REFERENCE_FILE)
+    labels = sorted(set(table["label"]))
+    sheet = pd.read_csv(small_dataset)  # one row per labelled image, none rescaled
+    assert len(table) == len(sheet) - len(small_model.failures)
+    assert sorted(table["label"]) == sorted(sheet["label"].astype(str))
+    ref = read_model_reference(folder, labels[0])
+    assert set(ref["label"]) == {labels[0]} and len(ref) == (table["label"] == labels[0]).sum()
+    scores = tmp_path / "scores.csv"
+    pd.DataFrame({"image": [f"img{i}.png" for i in range(12)], "status": "ok",
+                  "vacancies_per_1000": np.linspace(0.0, 30.0, 12)}).to_csv(scores, index=False)
+    out = tmp_path / "trend"
+    done = subprocess.run([sys.executable, "-m", "topoclass", "trend", str(scores), "--out",
+                           str(out), "--model", str(folder), "--reference-class", labels[0]],
+                          capture_output=True, text=True, env={**os.environ, "PYTHONPATH": str(
+                              Path(__file__).resolve().parents[1])})
+    assert done.returncode == 0, done.stderr
+    limits = pd.read_csv(out / "trend_limits.csv").set_index("chart")
+    v = ref["vacancies_per_1000"].to_numpy(dtype=float)
+    v = v[np.isfinite(v)]
+    sigma = np.abs(np.diff(v)).mean() / 1.128
+    assert limits.loc["vacancies_per_1000", "centre"] == pytest.approx(v.mean(), rel=1e-5)
+    assert limits.loc["vacancies_per_1000", "upper"] == pytest.approx(v.mean() + 3 * sigma,
+                                                                     rel=1e-5, abs=1e-9)
+    assert f"labelled {labels[0]}" in done.stdout
+
+
+def test_model_reference_names_the_missing_file_and_class(small_model, tmp_path):
+    from topoclass.trend import read_model_reference
+
+    with pytest.raises(TopoclassError, match="train the model again"):
+        read_model_reference(tmp_path)
+    with pytest.raises(TopoclassError, match="choose one of"):
+        read_model_reference(small_model.directory, "no-such-class")

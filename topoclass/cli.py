@@ -470,11 +470,17 @@ def trend(
                                           "the model whose hash starts so."),
     reference_batch: int | None = typer.Option(None, "--reference-batch", help="With --store: "
                                                "the stored batch whose images set the limits."),
+    model_dir: Path | None = typer.Option(None, "--model", help="Set the limits of the amounts "
+                                          "from this model's training images."),
+    reference_class: str | None = typer.Option(None, "--reference-class", help="With --model: "
+                                               "only its training images of this class (for "
+                                               "example the accepted, ordered ones)."),
 ) -> None:
     """Chart amounts and class probabilities over a run, with control limits and run rules."""
     from topoclass.scoring import CAUTION
     from topoclass.trend import (
         TREND_CAUTION,
+        default_charts,
         read_score_tables,
         trend_table,
         write_trend,
@@ -493,10 +499,27 @@ def trend(
         table = read_score_tables(scores_csv)
         ref = read_score_tables([reference]) if reference is not None else None
     chosen = [c.strip() for c in charts.split(",") if c.strip()] if charts else None
+    if reference_class is not None and model_dir is None:
+        raise TopoclassError("--reference-class needs --model MODEL_DIR; give the model whose "
+                             "training images set the limits")
+    if model_dir is not None:
+        if reference is not None or reference_batch is not None:
+            raise TopoclassError("give one reference: --model, --reference or "
+                                 "--reference-batch")
+        from topoclass.trend import read_model_reference
+
+        ref = read_model_reference(model_dir, reference_class)
+        if chosen is None:  # training images have amounts, not this run's probabilities
+            chosen = [c for c in default_charts(table)
+                      if c in ref.columns and ref[c].notna().sum() >= 2]
     result = trend_table(table, charts=chosen, by=by, reference=ref, baseline=baseline)
     paths = write_trend(result, out)
     flagged = result.table[result.table["flagged"]]
-    source = "the reference set" if ref is not None else f"the first {baseline} images"
+    if model_dir is not None:
+        source = f"{len(ref)} training images of {model_dir}" + (
+            f" labelled {reference_class}" if reference_class else " (every class)")
+    else:
+        source = "the reference set" if ref is not None else f"the first {baseline} images"
     typer.echo(f"charted {len(result.table)} images, {len(result.charts)} charts; "
                f"limits from {source}")
     for _, row in flagged.iterrows():

@@ -311,6 +311,55 @@ def plot_trend(result: TrendResult):
     return fig
 
 
+#: The file of a model folder holding its training images' amounts (a reference for limits).
+REFERENCE_FILE = "reference_amounts.csv"
+
+
+def write_reference_amounts(records, labels, path: str | Path) -> Path:
+    """Write the amounts of a model's training images: ``image, label, status`` and every
+    amount column of ``scores.csv``, one row per labelled image (no rescaled copies).
+
+    ``topoclass trend --model DIR`` reads it back (:func:`read_model_reference`) to set
+    control limits from the images the model learnt, for example its ``ordered`` ones.
+    """
+    from topoclass.amounts import AMOUNT_KEYS
+
+    rows = []
+    for record, label in zip(records, labels, strict=True):
+        row = {"image": record.source or "", "label": str(label), "status": "ok"}
+        for key in AMOUNT_KEYS:
+            value = (record.amounts or {}).get(key)
+            row[key] = float(value) if value is not None else np.nan
+        rows.append(row)
+    path = Path(path)
+    pd.DataFrame(rows).to_csv(path, index=False, float_format="%.6g")
+    return path
+
+
+def read_model_reference(model_dir: str | Path, label: str | None = None) -> pd.DataFrame:
+    """The training images' amounts of a model folder, all or those of one ``label``.
+
+    Raises
+    ------
+    TopoclassError
+        When the folder has no :data:`REFERENCE_FILE` (a model trained before it was
+        written: train again) or no training image has ``label``.
+    """
+    path = Path(model_dir) / REFERENCE_FILE
+    if not path.is_file():
+        raise TopoclassError(f"{model_dir}: no {REFERENCE_FILE} (models trained before it "
+                             "was written have none); train the model again or give "
+                             "--reference scores.csv")
+    table = pd.read_csv(path, dtype={"image": str, "label": str, "status": str})
+    if label is not None:
+        known = sorted(set(table["label"]))
+        table = table[table["label"] == label]
+        if table.empty:
+            raise TopoclassError(f"{model_dir}: no training image is labelled {label!r}; "
+                                 f"choose one of {', '.join(known)}")
+    return table.reset_index(drop=True)
+
+
 def trend_svg(result: TrendResult, *, width: int = 720, panel: int = 110) -> str:
     """The charts of :func:`plot_trend` as one inline SVG, drawn from the arrays.
 
@@ -425,6 +474,12 @@ def _numeric_columns(run: pd.DataFrame) -> list[str]:
             "message", "_order_key"}
     return [c for c in run.columns if c not in skip
             and pd.to_numeric(run[c], errors="coerce").notna().any()]
+
+
+def default_charts(scores: pd.DataFrame) -> list[str]:
+    """The columns :func:`trend_table` charts when none are chosen: the amounts of
+    :data:`DEFAULT_AMOUNTS` that hold values, then every ``p_<class>`` column."""
+    return _default_charts(_ok_rows(scores))
 
 
 def _default_charts(run: pd.DataFrame) -> list[str]:

@@ -262,6 +262,9 @@ def train_from_labels(
     }
     model.neighbours = labelled_diagrams(originals, original_labels, progress=progress)
     directory = save_model(model, model_dir, extra_card=extra)
+    from topoclass.trend import REFERENCE_FILE, write_reference_amounts
+
+    write_reference_amounts(originals, original_labels, directory / REFERENCE_FILE)
     if figures:
         from topoclass.report import write_training_figures
 
