@@ -201,7 +201,8 @@ def _report_cost(run: WalkThrough) -> str:
             "([benchmarks/report.md](benchmarks/report.md))")
 
 
-SPEED_METRICS = ("featurize_vs_floor", "jobs2_speedup", "site_finding_2048_s", "scaling_slope",
+SPEED_METRICS = ("features_vs_engine", "jobs2_vs_capacity", "cluster2_vs_jobs2",
+                 "featurize_vs_floor", "jobs2_speedup", "site_finding_2048_s", "scaling_slope",
                  "peak_rss_100k_mb")
 
 
