@@ -106,5 +106,5 @@ def _assert_one_error_line(stderr: str, path: Path) -> None:
     assert "Traceback" not in stderr
     lines = stderr.splitlines()
     assert len(lines) == 1, stderr
-    assert lines[0].startswith("error: ")
+    assert lines[0].startswith("topoclass: error: ")
     assert str(path) in lines[0]

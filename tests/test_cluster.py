@@ -164,6 +164,6 @@ def test_unreachable_scheduler_is_one_line_exit_2(small_model, forty, tmp_path, 
     assert code.value.code == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1, err
-    assert err[0].startswith(f"error: cannot reach a Dask scheduler at tcp://127.0.0.1:{port}")
+    assert err[0].startswith(f"topoclass: error: cannot reach a Dask scheduler at tcp://127.0.0.1:{port}")
     assert "dask scheduler" in err[0]
     assert not out.exists()  # refused before any work

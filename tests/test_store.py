@@ -388,7 +388,8 @@ def test_unreachable_store_is_one_line_exit_2_and_the_csv_gets_every_row(
         env=ENV, capture_output=True, text=True, timeout=300)
     assert done.returncode == 2
     last = done.stderr.strip().splitlines()[-1]
-    assert last.startswith("error:") and "host 127.0.0.1" in last and "secret" not in last
+    assert last.startswith("topoclass: error:") and "host 127.0.0.1" in last
+    assert "secret" not in last
     assert len(read_scores(out)) == len(collect_image_paths([few]))
 
 

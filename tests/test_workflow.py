@@ -124,7 +124,7 @@ def test_cli_score_refuses_when_nothing_could_be_scored(small_model, tmp_path):
     bad.write_text("no image here")
     done = _cli("score", small_model.directory, bad, "--out", tmp_path / "s.csv")
     assert done.returncode == 2
-    assert done.stderr.strip().splitlines()[-1].startswith("error:")
+    assert done.stderr.strip().splitlines()[-1].startswith("topoclass: error:")
     assert "Traceback" not in done.stderr
 
 
@@ -134,7 +134,7 @@ def test_cli_train_with_bad_sheet_is_one_line_exit_2(tmp_path):
     done = _cli("train", sheet, "--model", tmp_path / "m")
     assert done.returncode == 2
     lines = done.stderr.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("error:") and "labels.csv" in lines[0]
+    assert len(lines) == 1 and lines[0].startswith("topoclass: error:") and "labels.csv" in lines[0]
 
 
 def test_cli_unreadable_model_folder_is_one_line_exit_2(tmp_path):

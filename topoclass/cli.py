@@ -67,7 +67,7 @@ def main() -> None:
         if isinstance(code, int) and code:
             sys.exit(code)
     except TopoclassError as exc:
-        typer.echo(f"error: {_one_line(exc)}", err=True)
+        typer.echo(f"topoclass: error: {_one_line(exc)}", err=True)
         sys.exit(2)
     except typer.Exit as exc:
         sys.exit(exc.exit_code)
@@ -313,7 +313,7 @@ def _batch_recorder(store, model_dir, trained, settings, out, n_images, note, al
     try:
         opened = open_store(store)
     except StoreError as exc:
-        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        typer.echo(f"topoclass: error: {_one_line(exc)}; scoring to {out} only", err=True)
         return None, exc
     try:
         recorder = opened.start_batch(
@@ -325,7 +325,7 @@ def _batch_recorder(store, model_dir, trained, settings, out, n_images, note, al
             else getattr(getattr(trained, "review_band", None), "alpha_", None))
     except StoreError as exc:
         opened.close()
-        typer.echo(f"error: {_one_line(exc)}; scoring to {out} only", err=True)
+        typer.echo(f"topoclass: error: {_one_line(exc)}; scoring to {out} only", err=True)
         return None, exc
     return recorder, None
 
