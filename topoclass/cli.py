@@ -14,7 +14,7 @@ from pathlib import Path
 import typer
 
 from topoclass.errors import TopoclassError
-from topoclass.model.pipeline import CLASSIFIERS, DEFAULT_CLASSIFIER
+from topoclass.model.choices import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 _REGION_HELP = ("Analyse only this box, x0,y0,x1,y1 in pixels (or fractions of the frame, "
                 "e.g. 0,0,1,0.9); a data bar inside it is still found and left out.")

@@ -3,7 +3,8 @@
 The model stage of the pipeline, one concept per module:
 
 ========================  ===============================================================
-``pipeline``              the unfitted pipeline and the classifiers to choose from
+``choices``               the classifiers to choose from, and the default
+``pipeline``              the unfitted pipeline
 ``folds``                 stratified folds grouped by sample
 ``calibration``           which calibration, fitted on grouped folds; the evidence limit
 ``evaluation``            metrics, reliability tables, grouped cross-validation
@@ -25,49 +26,51 @@ whose calibration folds are grouped like the validation folds. Beside it sit nov
 training set.
 """
 
-from topoclass.model.calibration import (
-    CALIBRATION_METHODS,
-    ISOTONIC_MIN_PER_CLASS,
-    ISOTONIC_MIN_SAMPLES,
-    choose_calibration,
-    fit_calibrated,
-    limit_by_evidence,
-)
-from topoclass.model.conformal import (
-    DEFAULT_ALPHA,
-    REVIEW,
-    UNFAMILIAR,
-    ReviewBand,
-    conformal_quantile,
-)
-from topoclass.model.doubt import DoubtFade
-from topoclass.model.evaluation import (
-    CVReport,
-    cross_validate_model,
-    metrics_from_probabilities,
-    metrics_markdown,
-    reliability_table,
-)
-from topoclass.model.folds import fold_splits
-from topoclass.model.neighbours import LabelledDiagrams, labelled_diagrams, sliced_distance
-from topoclass.model.novelty import MahalanobisNovelty, NeighbourDensityNovelty, RangeNovelty
-from topoclass.model.pipeline import (
-    CLASSIFIERS,
-    DEFAULT_CLASSIFIER,
-    NonFiniteAsMissing,
-    build_pipeline,
-)
-from topoclass.model.storage import (
-    CARD_FILE,
-    CARD_FORMAT,
-    MODEL_FILE,
-    REPORT_FILE,
-    ModelVersionWarning,
-    load_model,
-    package_versions,
-    save_model,
-)
-from topoclass.model.trained import TrainedModel, select_model, train_model, validate_model
+# The names below are loaded on first use (PEP 562), as scikit-image loads its
+# subpackages: `import topoclass.model.choices` (the command line's defaults) must not pull
+# in scikit-learn, and each name still comes from the module that owns it.
+_HOME = {
+    "CALIBRATION_METHODS": "calibration",
+    "ISOTONIC_MIN_PER_CLASS": "calibration",
+    "ISOTONIC_MIN_SAMPLES": "calibration",
+    "choose_calibration": "calibration",
+    "fit_calibrated": "calibration",
+    "limit_by_evidence": "calibration",
+    "DEFAULT_ALPHA": "conformal",
+    "REVIEW": "conformal",
+    "UNFAMILIAR": "conformal",
+    "ReviewBand": "conformal",
+    "conformal_quantile": "conformal",
+    "DoubtFade": "doubt",
+    "CVReport": "evaluation",
+    "cross_validate_model": "evaluation",
+    "metrics_from_probabilities": "evaluation",
+    "metrics_markdown": "evaluation",
+    "reliability_table": "evaluation",
+    "fold_splits": "folds",
+    "LabelledDiagrams": "neighbours",
+    "labelled_diagrams": "neighbours",
+    "sliced_distance": "neighbours",
+    "MahalanobisNovelty": "novelty",
+    "NeighbourDensityNovelty": "novelty",
+    "RangeNovelty": "novelty",
+    "CLASSIFIERS": "choices",
+    "DEFAULT_CLASSIFIER": "choices",
+    "NonFiniteAsMissing": "pipeline",
+    "build_pipeline": "pipeline",
+    "CARD_FILE": "storage",
+    "CARD_FORMAT": "storage",
+    "MODEL_FILE": "storage",
+    "REPORT_FILE": "storage",
+    "ModelVersionWarning": "storage",
+    "load_model": "storage",
+    "package_versions": "storage",
+    "save_model": "storage",
+    "TrainedModel": "trained",
+    "select_model": "trained",
+    "train_model": "trained",
+    "validate_model": "trained",
+}
 
 __all__ = [
     "CALIBRATION_METHODS", "CARD_FILE", "CARD_FORMAT", "CLASSIFIERS", "CVReport",
@@ -81,3 +84,17 @@ __all__ = [
     "save_model", "select_model", "train_model", "validate_model",
     "LabelledDiagrams", "labelled_diagrams", "sliced_distance",
 ]
+
+
+def __getattr__(name: str):
+    if name in _HOME:
+        import importlib
+
+        value = getattr(importlib.import_module(f"{__name__}.{_HOME[name]}"), name)
+        globals()[name] = value  # later look-ups skip this function
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_HOME))

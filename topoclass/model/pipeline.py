@@ -15,22 +15,7 @@ from sklearn.svm import SVC
 from sklearn.utils.validation import _check_feature_names_in, check_is_fitted, validate_data
 
 from topoclass.errors import TopoclassError
-
-# Small labelled sets (20–60 images per class) with a few hundred correlated features are the
-# normal case. A random forest needs no feature scaling, is insensitive to many redundant or
-# useless columns (it picks splits feature by feature) and averages 300 trees, so its
-# probabilities are smooth. A logistic fit (C=1) on a few hundred features and ~100 images
-# separates the classes linearly and becomes overconfident on its mistakes. `topoclass train
-# --select` measures the classifiers against each other on the user's own labelled set.
-DEFAULT_CLASSIFIER = "forest"
-
-
-CLASSIFIERS: dict[str, str] = {
-    "logistic": "multinomial logistic regression, L2 penalty, C=1 (few features, e.g. 'order')",
-    "forest": "random forest, 300 trees (default: robust on small sets with many features)",
-    "boosting": "gradient boosting, 150 depth-2 trees, learning rate 0.1, subsample 0.8",
-    "svm": "RBF support-vector machine; probabilities come from the calibration step",
-}
+from topoclass.model.choices import CLASSIFIERS, DEFAULT_CLASSIFIER
 
 
 class NonFiniteAsMissing(TransformerMixin, BaseEstimator):
