@@ -149,7 +149,7 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     # As in the scoring summary: an unfamiliar or review image's class is not counted.
     counts = Counter(r.get("verdict") or r.get("predicted", "") for r in ok
                      if not _is_unfamiliar(r) and r.get("verdict") != "review")
-    trend = _trend_section(scores_csv, len(ok)) if trend_charts else ""
+    trend = _trend_section(rows, len(ok)) if trend_charts else ""
     page = _report_page(
         trend=trend, scores_csv=scores_csv, rows=rows, classes=classes, measures=measures,
         counts=counts,
@@ -163,9 +163,15 @@ def write_batch_report(scores_csv: str | Path, out_html: str | Path | None = Non
     return out_html
 
 
-def _trend_section(scores_csv: Path, n_ok: int) -> str:
-    """Control charts of this batch in file order, or a line saying why there are none."""
-    from topoclass.trend import TREND_CAUTION, read_score_tables, trend_svg, trend_table
+def _trend_section(rows: list[dict], n_ok: int) -> str:
+    """Control charts of this batch in file order, or a line saying why there are none.
+
+    ``rows`` are the rows of the scores file as the page read them; the charts coerce their
+    text to numbers, so the file is not read a second time.
+    """
+    import pandas as pd
+
+    from topoclass.trend import TREND_CAUTION, trend_svg, trend_table
 
     head = "<h2 id='trend'>Over the batch</h2>"
     if n_ok < MIN_TREND_IMAGES:
@@ -174,7 +180,7 @@ def _trend_section(scores_csv: Path, n_ok: int) -> str:
                 "</p>")
     baseline = min(20, n_ok)
     try:
-        result = trend_table(read_score_tables([scores_csv]), baseline=baseline)
+        result = trend_table(pd.DataFrame(rows), baseline=baseline)
     except TopoclassError as exc:
         return head + f"<p class='note'>No control charts: {html.escape(str(exc))}</p>"
     flagged = int(result.table["flagged"].sum())
