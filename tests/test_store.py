@@ -158,19 +158,24 @@ def test_score_stores_the_rows_the_csv_gets(small_model, batch, feature_cache, t
     store.close()
 
 
+def _score_into_store(store, trained, paths, out, feature_cache, *, alpha=None,
+                      resume=False):
+    """Score ``paths`` into ``out`` and into ``store`` as one new batch."""
+    rec = store.start_batch(model_sha256="c" * 64, model_path="m",
+                            classes=[str(c) for c in trained.classes], settings=trained.settings,
+                            output_csv=str(out), n_images=len(paths), review_alpha=alpha)
+    return score_images(trained, paths, out, cache_dir=feature_cache, recorder=rec,
+                        resume=resume, alpha=alpha)
+
+
 def test_rescore_is_a_new_run_and_resume_copies_stored_rows(small_model, batch, feature_cache,
                                                             tmp_path):
     paths = collect_image_paths([batch])[:5]
     trained = small_model.model
-    classes = [str(c) for c in trained.classes]
     store = open_store(tmp_path / "results.db")
 
     def run(out, resume=False):
-        rec = store.start_batch(model_sha256="c" * 64, model_path="m", classes=classes,
-                                settings=trained.settings, output_csv=str(out),
-                                n_images=len(paths))
-        return score_images(trained, paths, out, cache_dir=feature_cache, recorder=rec,
-                            resume=resume)
+        return _score_into_store(store, trained, paths, out, feature_cache, resume=resume)
 
     run(tmp_path / "first.csv")
     run(tmp_path / "second.csv")
@@ -194,15 +199,11 @@ def test_resume_at_another_review_alpha_scores_again(small_model, batch, feature
     # reused by a resume at another (the settings key holds the alpha).
     paths = collect_image_paths([batch])[:3]
     trained = small_model.model
-    classes = [str(c) for c in trained.classes]
     store = open_store(tmp_path / "results.db")
 
     def run(out, alpha, resume=False):
-        rec = store.start_batch(model_sha256="d" * 64, model_path="m", classes=classes,
-                                settings=trained.settings, output_csv=str(out),
-                                n_images=len(paths), review_alpha=alpha)
-        return score_images(trained, paths, out, cache_dir=feature_cache, recorder=rec,
-                            resume=resume, alpha=alpha)
+        return _score_into_store(store, trained, paths, out, feature_cache, alpha=alpha,
+                                 resume=resume)
 
     run(tmp_path / "a.csv", 0.1)
     assert run(tmp_path / "b.csv", 0.1, resume=True).skipped == 3
